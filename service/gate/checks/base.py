@@ -1,0 +1,113 @@
+"""The check registry: how a check kind declares its policy keys and its function.
+
+A check kind is a pydantic model (its policy keys, ``extra="forbid"``) plus a pure function
+``run(config, ctx) -> list[Finding]``. Register both with :func:`register`::
+
+    class MyConfig(CheckConfig):
+        kind: Literal["my-kind"]
+        limit: float
+
+    @register("my-kind", MyConfig, family="drift")
+    def run_my_kind(config: MyConfig, ctx: CheckContext) -> list[Finding]:
+        ...
+
+The function reports ``breach`` when its limit is crossed; :func:`service.gate.evaluate.evaluate`
+turns a breach of a non-blocking check into ``advisory`` and wraps errors (fail closed).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from datetime import datetime
+from typing import TYPE_CHECKING, Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field
+
+from service.gate.types import Finding, HistoryEntry, Snapshot
+
+if TYPE_CHECKING:
+    from service.gate.policy import Policy
+
+
+class CheckConfig(BaseModel):
+    """Keys every check accepts. Subclasses add their own and narrow ``kind`` to a literal."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    name: str = Field(min_length=1, max_length=100, description="Unique name within the policy.")
+    kind: str = Field(description="The check kind; selects the other keys.")
+    blocking: bool = Field(True, description="A breach holds the candidate; false: advisory.")
+    against: Literal["baseline", "reference"] = Field(
+        "baseline", description="Compare with the serving baseline or the longer-term reference."
+    )
+    description: str = Field("", description="Free text shown beside the finding.")
+
+
+@dataclass(frozen=True)
+class CheckContext:
+    """What a check sees. ``other`` is the snapshot named by the check's ``against`` key."""
+
+    candidate: Snapshot
+    other: Snapshot | None
+    baseline: Snapshot | None
+    reference: Snapshot | None
+    history: tuple[HistoryEntry, ...]
+    now: datetime
+    policy: Policy
+    baseline_since: datetime | None = None
+    known_keys: frozenset[str] | None = None
+
+    @property
+    def seed(self) -> int:
+        return self.policy.seed
+
+
+CheckFn = Callable[[Any, CheckContext], Sequence[Finding]]
+
+
+@dataclass(frozen=True)
+class CheckSpec:
+    kind: str
+    family: str
+    config: type[CheckConfig]
+    run: CheckFn
+    #: True when the check needs the other snapshot (skipped when there is none).
+    needs_other: bool = True
+
+
+REGISTRY: dict[str, CheckSpec] = {}
+
+
+def register(
+    kind: str, config: type[CheckConfig], *, family: str, needs_other: bool = True
+) -> Callable[[CheckFn], CheckFn]:
+    """Class the decorated function as the runner of check *kind* (see module docstring)."""
+
+    def decorate(fn: CheckFn) -> CheckFn:
+        if kind in REGISTRY:
+            raise RuntimeError(f"check kind {kind!r} registered twice")
+        REGISTRY[kind] = CheckSpec(
+            kind=kind, family=family, config=config, run=fn, needs_other=needs_other
+        )
+        return fn
+
+    return decorate
+
+
+def skipped(config: CheckConfig, message: str, *, statistic: str | None = None) -> Finding:
+    """A ``skipped`` finding: the inputs this check needs are absent."""
+    return Finding(
+        check=config.name,
+        kind=config.kind,
+        outcome="skipped",
+        message=message,
+        statistic=statistic,
+        blocking=config.blocking,
+        against=config.against,
+    )
+
+
+def over_limit(value: float, limit: float | None) -> bool:
+    """True when *value* exceeds *limit* (no limit: never)."""
+    return limit is not None and value > limit

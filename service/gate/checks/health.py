@@ -1,0 +1,111 @@
+"""Health: the candidate's own sample, judged alone. Always blocking (common practice).
+
+Finds non-finite scores, scores out of the allowed range, collapsed output (no spread),
+saturation (too many rows sharing one value) and too few rows.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from service.gate.policy import SampleRules
+from service.gate.types import Finding, Snapshot
+
+KIND = "health"
+
+
+def _finding(check: str, breach: bool, message: str, **numbers: float | None) -> Finding:
+    return Finding(
+        check=f"health.{check}",
+        kind=KIND,
+        outcome="breach" if breach else "ok",
+        message=message,
+        statistic=check,
+        blocking=True,
+        **numbers,  # type: ignore[arg-type]
+    )
+
+
+def health_findings(rules: SampleRules, candidate: Snapshot) -> list[Finding]:
+    """Health findings for *candidate* under *rules*; no baseline needed."""
+    sample = candidate.sample
+    n = 0 if sample is None else len(sample)
+    findings = [
+        _finding(
+            "rows",
+            n < rules.min_rows,
+            f"sample has {n} rows, fewer than the {rules.min_rows} required"
+            if n < rules.min_rows
+            else f"sample has {n} rows (at least {rules.min_rows} required)",
+            value=n,
+            limit=rules.min_rows,
+        )
+    ]
+    if sample is None or n == 0:
+        return findings
+    score = sample.score
+    finite_mask = np.isfinite(score)
+    nonfinite_share = 1.0 - float(np.mean(finite_mask))
+    bad = nonfinite_share > rules.max_nonfinite_share
+    n_bad = int(n - finite_mask.sum())
+    findings.append(
+        _finding(
+            "non-finite",
+            bad,
+            f"{n_bad} of {n} scores are NaN, infinite or missing ({nonfinite_share:.2%}); "
+            f"at most {rules.max_nonfinite_share:.2%} allowed"
+            if bad
+            else f"{n_bad} non-finite scores ({nonfinite_share:.2%})",
+            value=nonfinite_share,
+            limit=rules.max_nonfinite_share,
+        )
+    )
+    finite = score[finite_mask]
+    if finite.size == 0:
+        return findings
+    low = -np.inf if rules.score_min is None else rules.score_min
+    high = np.inf if rules.score_max is None else rules.score_max
+    out_share = float(np.mean((finite < low) | (finite > high)))
+    bad = out_share > rules.max_out_of_range_share
+    findings.append(
+        _finding(
+            "range",
+            bad,
+            f"{out_share:.2%} of scores fall outside [{low:g}, {high:g}] "
+            f"(observed {finite.min():.4g} to {finite.max():.4g})"
+            if bad
+            else f"scores within [{low:g}, {high:g}] (observed {finite.min():.4g} to "
+            f"{finite.max():.4g})",
+            value=out_share,
+            limit=rules.max_out_of_range_share,
+        )
+    )
+    std = float(np.std(finite))
+    bad = std <= rules.min_std
+    findings.append(
+        _finding(
+            "collapse",
+            bad,
+            f"output collapsed: score standard deviation {std:.3g} is at or below {rules.min_std:g}"
+            if bad
+            else f"score standard deviation {std:.4g}",
+            value=std,
+            limit=rules.min_std,
+        )
+    )
+    _, counts = np.unique(finite, return_counts=True)
+    mode_share = float(counts.max() / n)
+    bad = mode_share > rules.max_mode_share
+    findings.append(
+        _finding(
+            "saturation",
+            bad,
+            f"{mode_share:.2%} of rows share one score value; at most "
+            f"{rules.max_mode_share:.2%} allowed"
+            if bad
+            else f"most common score value covers {mode_share:.2%} of rows",
+            value=mode_share,
+            limit=rules.max_mode_share,
+        )
+    )
+    return findings

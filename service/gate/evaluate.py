@@ -1,0 +1,137 @@
+"""evaluate(candidate, baseline, reference, history, policy) -> Verdict. Pure.
+
+Order of work:
+
+1. health findings (the candidate's sample alone; always blocking);
+2. lineage findings (watermark advance, known parent);
+3. each policy check, against the baseline or the reference as its ``against`` key says;
+   a check whose other snapshot does not exist is ``skipped``; a check that raises gives a
+   blocking breach naming the error (fail closed);
+4. the decision: ``hold`` when a blocking finding is a breach, when a blocking finding is
+   inconclusive and the policy says ``on_inconclusive = "hold"``, or when this is the model's
+   first snapshot and the policy says ``first_snapshot = "hold"``; else ``promote``.
+
+Reasons are ordered by severity: evaluation errors, health, lineage, other breaches (in policy
+order), then inconclusive findings.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from collections.abc import Iterable
+
+from service.gate.checks import REGISTRY, CheckConfig, CheckContext
+from service.gate.checks.base import skipped
+from service.gate.checks.health import health_findings
+from service.gate.checks.lineage import lineage_findings
+from service.gate.policy import Policy
+from service.gate.types import Finding, GateInput, Verdict
+
+_SEVERITY = {"health": 1, "lineage": 2}
+
+
+def _run_check(config: CheckConfig, inp: GateInput, policy: Policy) -> list[Finding]:
+    spec = REGISTRY[config.kind]
+    other = inp.baseline if config.against == "baseline" else inp.reference
+    if spec.needs_other and other is None:
+        what = "no baseline yet" if config.against == "baseline" else "no reference snapshot"
+        return [skipped(config, f"{what}: nothing to compare with")]
+    ctx = CheckContext(
+        candidate=inp.candidate,
+        other=other,
+        baseline=inp.baseline,
+        reference=inp.reference,
+        history=inp.history,
+        now=inp.now,
+        policy=policy,
+        baseline_since=inp.baseline_since,
+        known_keys=inp.known_keys,
+    )
+    try:
+        produced = list(spec.run(config, ctx))
+    except Exception as exc:  # fail closed: a broken check holds, it never passes silently
+        return [
+            Finding(
+                check=config.name,
+                kind=config.kind,
+                outcome="breach",
+                statistic="error",
+                message=f"check {config.name!r} failed: {type(exc).__name__}: {exc}",
+                blocking=config.blocking,
+                against=config.against,
+                details={"error": f"{type(exc).__name__}: {exc}"},
+            )
+        ]
+    return [_apply_blocking(f, config) for f in produced]
+
+
+def _apply_blocking(finding: Finding, config: CheckConfig) -> Finding:
+    """A non-blocking check's breach is reported as ``advisory``."""
+    blocking = config.blocking
+    outcome = finding.outcome
+    if not blocking and outcome == "breach":
+        outcome = "advisory"
+    return dataclasses.replace(finding, blocking=blocking, outcome=outcome)
+
+
+def _reasons(findings: Iterable[Finding], policy: Policy) -> list[str]:
+    ranked: list[tuple[int, int, str]] = []
+    for order, f in enumerate(findings):
+        if not f.blocking:
+            continue
+        if f.outcome == "breach":
+            severity = 0 if f.statistic == "error" else _SEVERITY.get(f.kind, 3)
+            ranked.append((severity, order, f.message))
+        elif f.outcome == "inconclusive" and policy.on_inconclusive == "hold":
+            ranked.append((4, order, f"inconclusive: {f.message}"))
+    return [message for _, _, message in sorted(ranked)]
+
+
+def evaluate(inp: GateInput, policy: Policy | None) -> Verdict:
+    """Judge ``inp.candidate`` under *policy*; see the module docstring for the rules."""
+    baseline_key = inp.baseline.key if inp.baseline is not None else None
+    if policy is None:
+        message = f"no policy matches model {inp.candidate.model!r}; holding (fail closed)"
+        return Verdict(
+            decision="hold",
+            reasons=(message,),
+            findings=(),
+            policy_name=None,
+            policy_digest=None,
+            baseline_key=baseline_key,
+            error=message,
+        )
+    findings: list[Finding] = []
+    findings.extend(health_findings(policy.sample, inp.candidate))
+    findings.extend(lineage_findings(policy.lineage, inp))
+    for config in policy.checks:
+        findings.extend(_run_check(config, inp, policy))
+    reasons = _reasons(findings, policy)
+    if inp.baseline is None and policy.first_snapshot == "hold":
+        reasons.append(
+            "first snapshot of this model: the policy holds it until a person sets the baseline"
+        )
+    decision = "hold" if reasons else "promote"
+    return Verdict(
+        decision=decision,
+        reasons=tuple(reasons),
+        findings=tuple(findings),
+        policy_name=policy.name,
+        policy_digest=policy.digest,
+        baseline_key=baseline_key,
+        moves_baseline=decision == "promote" and policy.promote_moves_baseline,
+    )
+
+
+def failed_verdict(error: BaseException, *, policy: Policy | None, baseline_key: str | None) -> Verdict:
+    """The verdict when evaluation itself raised: hold, with the error as its reason."""
+    message = f"evaluation failed: {type(error).__name__}: {error}"
+    return Verdict(
+        decision="hold",
+        reasons=(message,),
+        findings=(),
+        policy_name=policy.name if policy else None,
+        policy_digest=policy.digest if policy else None,
+        baseline_key=baseline_key,
+        error=message,
+    )
