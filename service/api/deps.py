@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from collections.abc import Callable, Iterator
+import fnmatch
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from datetime import datetime
@@ -28,6 +29,17 @@ class Database:
             yield session
 
 
+#: What each role may do. ``read``: see models, verdicts, snapshots, policies, audit;
+#: ``submit``: post snapshots; ``operate``: override verdicts, set or roll back baselines, pin
+#: references; ``admin``: tokens and everything else.
+ROLE_ACTIONS: dict[str, frozenset[str]] = {
+    "viewer": frozenset({"read"}),
+    "trainer": frozenset({"read", "submit"}),
+    "operator": frozenset({"read", "operate"}),
+    "admin": frozenset({"read", "submit", "operate", "admin"}),
+}
+
+
 @dataclass(frozen=True)
 class Principal:
     """Who is calling: a name for the audit log, a role and the model patterns in scope."""
@@ -35,6 +47,14 @@ class Principal:
     name: str
     role: str = "admin"
     models: tuple[str, ...] = field(default=("*",))
+
+    def allows(self, action: str, model: str | None = None) -> bool:
+        """May this caller do *action* (on *model*, when the action concerns one)?"""
+        if action not in ROLE_ACTIONS.get(self.role, frozenset()):
+            return False
+        if model is None:
+            return True
+        return any(fnmatch.fnmatchcase(model, pattern) for pattern in self.models)
 
 
 def get_db(request: Request) -> Database:
