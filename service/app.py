@@ -9,12 +9,17 @@ from datetime import UTC, datetime
 
 from fastapi import FastAPI
 
-from service import __version__
+from service import __version__, logs
+from service.api.auth import TokenGate
 from service.api.deps import Database
 from service.api.errors import install_error_handlers
+from service.api.middleware import BodyLimit, RequestContext
 from service.api.routers import health, models, snapshots, verdicts
+from service.api.routers import metrics as metrics_routes
 from service.api.routers import policies as policy_routes
+from service.api.routers import tokens as token_routes
 from service.gate.policy import Policy, load_policies
+from service.metrics import Metrics
 from service.settings import Settings
 from service.store import db as store_db
 
@@ -38,7 +43,12 @@ def create_app(
     engine = store_db.make_engine(settings)
     if check_database:
         store_db.ensure_ready(settings, engine)
-        log.info("storage settings: %s", store_db.storage_settings(engine))
+        storage = store_db.storage_settings(engine)
+        log.info("storage settings: %s", storage,
+                 extra=logs.fields(event="storage", dialect=engine.dialect.name, **storage))
+    if settings.auth == "open":
+        log.warning("OPEN mode: no API tokens are checked (demo and local development only)",
+                    extra=logs.fields(event="auth", auth="open"))
     loaded = list(policies) if policies is not None else load_policies(settings.policy_dir)
     app = FastAPI(
         title="tidegate",
@@ -51,7 +61,14 @@ def create_app(
     app.state.database = Database(store_db.make_sessionmaker(engine))
     app.state.policies = loaded
     app.state.clock = clock
+    app.state.metrics = Metrics()
     install_error_handlers(app)
     for module in (snapshots, models, verdicts, policy_routes, health):
         app.include_router(module.router)
+    for module in (token_routes, metrics_routes):
+        app.include_router(module.router)
+    # Added last = outermost: RequestContext -> BodyLimit -> TokenGate -> routes.
+    app.add_middleware(TokenGate, settings=settings, database=app.state.database)
+    app.add_middleware(BodyLimit, limit=settings.max_body_bytes)
+    app.add_middleware(RequestContext, metrics=app.state.metrics)
     return app

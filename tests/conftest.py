@@ -19,3 +19,7 @@ def skip_or_fail(reason: str) -> None:
     if REQUIRE_ALL:
         pytest.fail(f"required test cannot run (TIDEGATE_REQUIRE_ALL=1): {reason}")
     pytest.skip(reason)
+
+
+# Database fixtures (SQLite and PostgreSQL), apps with tokens: see tests/databases.py.
+pytest_plugins = ["tests.databases"]

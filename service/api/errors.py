@@ -11,6 +11,7 @@ from typing import Any
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
+from sqlalchemy.exc import OperationalError
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service.errors import TidegateError
@@ -59,7 +60,22 @@ def error_response(status: int, code: str, message: str, field: str | None = Non
 
 async def _tidegate_error(_request: Request, exc: Exception) -> JSONResponse:
     assert isinstance(exc, TidegateError)
-    return JSONResponse(status_code=exc.status, content=exc.body())
+    response = JSONResponse(status_code=exc.status, content=exc.body())
+    if exc.status == 401:
+        response.headers["WWW-Authenticate"] = 'Bearer realm="tidegate"'
+    return response
+
+
+async def _storage_error(_request: Request, exc: Exception) -> JSONResponse:
+    """The database failed (locked past the busy timeout, gone, disk full): the transaction was
+    rolled back, so nothing of the request was stored and a retry is safe."""
+    log.error("storage error: %s", exc, exc_info=exc)
+    response = error_response(
+        503, "storage_unavailable",
+        "the database did not complete the request; nothing was stored, retry later",
+    )
+    response.headers["Retry-After"] = "1"
+    return response
 
 
 async def _validation_error(_request: Request, exc: Exception) -> JSONResponse:
@@ -97,4 +113,5 @@ def install_error_handlers(app: FastAPI) -> None:
     app.add_exception_handler(TidegateError, _tidegate_error)
     app.add_exception_handler(RequestValidationError, _validation_error)
     app.add_exception_handler(StarletteHTTPException, _http_error)
+    app.add_exception_handler(OperationalError, _storage_error)
     app.add_exception_handler(Exception, _unexpected)

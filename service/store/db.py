@@ -52,10 +52,20 @@ def make_engine(settings: Settings) -> Engine:
 
         @event.listens_for(engine, "begin")
         def _on_begin(conn: Any) -> None:
-            conn.exec_driver_sql("BEGIN IMMEDIATE")
+            # A read-only unit of work (read_transaction) starts deferred: it takes no write
+            # lock, so readers never queue behind writers, and it cannot hit a busy snapshot
+            # because it never upgrades to a writer.
+            if conn.get_execution_options().get(READ_ONLY):
+                conn.exec_driver_sql("BEGIN")
+            else:
+                conn.exec_driver_sql("BEGIN IMMEDIATE")
 
         return engine
     return create_engine(url, pool_pre_ping=True)
+
+
+#: Execution option marking a read-only transaction (see read_transaction).
+READ_ONLY = "tidegate_read_only"
 
 
 def make_sessionmaker(engine: Engine) -> sessionmaker[Session]:
@@ -73,6 +83,19 @@ def transaction(factory: sessionmaker[Session]) -> Iterator[Session]:
         session.rollback()
         raise
     finally:
+        session.close()
+
+
+@contextmanager
+def read_transaction(factory: sessionmaker[Session]) -> Iterator[Session]:
+    """A session for reading only: SQLite opens it with a deferred ``BEGIN``; it is rolled back
+    at the end, so nothing it did is ever committed."""
+    session = factory()
+    try:
+        session.connection(execution_options={READ_ONLY: True})
+        yield session
+    finally:
+        session.rollback()
         session.close()
 
 

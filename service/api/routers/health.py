@@ -2,13 +2,14 @@
 
 from __future__ import annotations
 
-from fastapi import APIRouter, Request
+from fastapi import APIRouter, Depends, Request
 from fastapi.responses import JSONResponse
 
+from service.api.deps import PUBLIC
 from service.api.schemas import Health
 from service.store import db as store_db
 
-router = APIRouter(tags=["health"])
+router = APIRouter(tags=["health"], dependencies=[Depends(PUBLIC)])
 
 
 @router.get("/healthz", response_model=Health, summary="The process is up")

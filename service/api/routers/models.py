@@ -8,7 +8,7 @@ from typing import Annotated, Literal
 from fastapi import APIRouter, Query
 
 from service import intake, views
-from service.api.deps import ClockDep, DbDep, PrincipalDep
+from service.api.deps import ClockDep, DbDep, OperatorDep, ReaderDep
 from service.api.routers.snapshots import ERRORS, ModelPath
 from service.api.schemas import BaselinePublic, BaselineSet, ModelList, ModelPublic, VerdictList
 from service.errors import InvalidInput, NotFound
@@ -18,16 +18,22 @@ router = APIRouter(prefix="/v1/models", tags=["models"])
 
 
 @router.get("", response_model=ModelList, summary="Every model with its baseline and last verdict")
-def list_models(db: DbDep, clock: ClockDep) -> dict[str, object]:
+def list_models(db: DbDep, clock: ClockDep, principal: ReaderDep) -> dict[str, object]:
     now = clock()
-    with db.transaction() as session:
-        data = [views.model_view(session, model=m, now=now) for m in repo.list_model_rows(session)]
+    with db.read() as session:
+        data = [
+            views.model_view(session, model=m, now=now)
+            for m in repo.list_model_rows(session)
+            if principal.allows("read", m.name)
+        ]
     return {"data": data, "count": len(data)}
 
 
 @router.get("/{model}", response_model=ModelPublic, responses=ERRORS, summary="One model")
-def get_model(db: DbDep, clock: ClockDep, model: str = ModelPath) -> dict[str, object]:
-    with db.transaction() as session:
+def get_model(
+    db: DbDep, clock: ClockDep, principal: ReaderDep, model: str = ModelPath
+) -> dict[str, object]:
+    with db.read() as session:
         row = repo.get_model(session, name=model)
         if row is None:
             raise NotFound(f"no model {model!r}", field="model")
@@ -42,6 +48,7 @@ def get_model(db: DbDep, clock: ClockDep, model: str = ModelPath) -> dict[str, o
 )
 def list_verdicts(
     db: DbDep,
+    principal: ReaderDep,
     model: str = ModelPath,
     decision: Annotated[Literal["promote", "hold"] | None, Query()] = None,
     since: Annotated[datetime | None, Query(description="Created at or after (ISO 8601).")] = None,
@@ -58,7 +65,7 @@ def list_verdicts(
     for name, value in (("since", since), ("until", until)):
         if value is not None and value.tzinfo is None:
             raise InvalidInput("give a time zone (e.g. 2026-12-01T02:45:00Z)", field=f"query.{name}")
-    with db.transaction() as session:
+    with db.read() as session:
         row = repo.get_model(session, name=model)
         if row is None:
             raise NotFound(f"no model {model!r}", field="model")
@@ -82,7 +89,7 @@ def list_verdicts(
     summary="Set the baseline by hand: promote a snapshot or roll back to an earlier one",
 )
 def set_baseline(
-    body: BaselineSet, db: DbDep, clock: ClockDep, principal: PrincipalDep,
+    body: BaselineSet, db: DbDep, clock: ClockDep, principal: OperatorDep,
     model: str = ModelPath,
 ) -> dict[str, object]:
     with db.transaction() as session:

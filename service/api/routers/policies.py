@@ -4,14 +4,30 @@ from __future__ import annotations
 
 from fastapi import APIRouter
 
-from service.api.deps import PoliciesDep
+from service.api.deps import DbDep, PoliciesDep, Principal, ReaderDep
 from service.api.schemas import PolicyList
+from service.gate.policy import Policy, select_policy
+from service.store import repo
 
 router = APIRouter(prefix="/v1/policies", tags=["policies"])
 
 
+def visible_policies(policies: list[Policy], principal: Principal, db: DbDep) -> list[Policy]:
+    """A token scoped to some models sees the policies in force for the models it may read,
+    and those whose patterns its scope covers; an unscoped one (``*``) sees them all."""
+    if "*" in principal.models:
+        return policies
+    with db.read() as session:
+        names = [m.name for m in repo.list_model_rows(session) if principal.allows("read", m.name)]
+    in_force = {id(p) for p in (select_policy(policies, name) for name in names) if p is not None}
+    return [
+        p for p in policies
+        if id(p) in in_force or any(principal.allows("read", pattern) for pattern in p.models)
+    ]
+
+
 @router.get("", response_model=PolicyList, summary="The policies in force, with their digests")
-def list_policies(policies: PoliciesDep) -> dict[str, object]:
+def list_policies(policies: PoliciesDep, principal: ReaderDep, db: DbDep) -> dict[str, object]:
     data = [
         {
             "name": p.name,
@@ -27,6 +43,6 @@ def list_policies(policies: PoliciesDep) -> dict[str, object]:
             ],
             "text": p.text,
         }
-        for p in policies
+        for p in visible_policies(policies, principal, db)
     ]
     return {"data": data, "count": len(data)}

@@ -6,10 +6,10 @@ import hashlib
 import json
 import re
 
-from fastapi import APIRouter, Path, Response
+from fastapi import APIRouter, Path, Request, Response
 
 from service import intake, views
-from service.api.deps import ClockDep, DbDep, PoliciesDep, PrincipalDep, SettingsDep
+from service.api.deps import ClockDep, DbDep, PoliciesDep, ReaderDep, SettingsDep, TrainerDep
 from service.api.sample import to_sample
 from service.api.schemas import ErrorResponse, SnapshotCreate, SnapshotPublic, VerdictPublic
 from service.errors import InvalidInput, NotFound
@@ -51,12 +51,13 @@ def content_digest(body: SnapshotCreate) -> str:
 )
 def post_snapshot(
     body: SnapshotCreate,
+    request: Request,
     response: Response,
     db: DbDep,
     settings: SettingsDep,
     policies: PoliciesDep,
     clock: ClockDep,
-    principal: PrincipalDep,
+    principal: TrainerDep,
     model: str = ModelPath,
 ) -> dict[str, object]:
     check_model_name(model)
@@ -83,14 +84,21 @@ def post_snapshot(
             actor=principal.name,
         )
         detail = views.verdict_detail(session, verdict=result.verdict)
+    if result.created:
+        metrics = getattr(request.app.state, "metrics", None)
+        if metrics is not None:
+            metrics.verdict(model=model, decision=str(detail["decision"]),
+                            seconds=float(result.verdict.duration_ms) / 1000.0)
     response.status_code = 201 if result.created else 200
     return detail
 
 
 @router.get("/{key}", response_model=SnapshotPublic, responses=ERRORS,
             summary="One snapshot by its key")
-def get_snapshot(db: DbDep, key: str, model: str = ModelPath) -> dict[str, object]:
-    with db.transaction() as session:
+def get_snapshot(
+    db: DbDep, principal: ReaderDep, key: str, model: str = ModelPath
+) -> dict[str, object]:
+    with db.read() as session:
         model_row = repo.get_model(session, name=model)
         if model_row is None:
             raise NotFound(f"no model {model!r}", field="model")
