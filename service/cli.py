@@ -35,23 +35,43 @@ def _print_json(data: Any) -> None:
 
 
 def cmd_serve(args: argparse.Namespace) -> int:
+    import os
+
     import uvicorn
 
+    from service import logs
     from service.app import create_app
     from service.settings import Settings
 
     overrides: dict[str, Any] = {}
     if args.open:
         overrides["auth"] = "open"
+        os.environ["TIDEGATE_AUTH"] = "open"  # for worker processes
     settings = Settings(**overrides)
+    logs.configure(settings.log_level)
     if settings.auth == "open":
         print(
             "WARNING: tidegate runs in OPEN mode: no API tokens are checked. Use it for the demo "
             "and local development only.",
             file=sys.stderr,
         )
+    # Built here even with several workers: the database is checked (or migrated) once, and a
+    # bad policy or an old database is reported before any worker starts.
     app = create_app(settings)
-    uvicorn.run(app, host=args.host, port=args.port, log_level=settings.log_level.lower())
+    common: dict[str, Any] = {
+        "host": args.host,
+        "port": args.port,
+        "log_config": logs.log_config(settings.log_level),
+        "access_log": False,
+        "timeout_graceful_shutdown": settings.shutdown_grace_seconds,
+    }
+    if args.workers > 1:
+        os.environ["TIDEGATE_MIGRATE_ON_START"] = "false"
+        app.state.engine.dispose()
+        uvicorn.run("service.asgi:app_from_environment", factory=True, workers=args.workers,
+                    **common)
+    else:
+        uvicorn.run(app, **common)
     return EXIT_OK
 
 
@@ -86,6 +106,109 @@ def cmd_policy_check(args: argparse.Namespace) -> int:
         return EXIT_ERROR
     for p in policies:
         print(f"{p.name}: models {', '.join(p.models)}; {len(p.checks)} checks; {p.digest}")
+    return EXIT_OK
+
+
+def _store() -> tuple[Any, Any]:
+    """(settings, sessionmaker) of the database in ``TIDEGATE_DATABASE_URL``, which must be at
+    the current revision."""
+    from service.settings import Settings
+    from service.store import db
+
+    settings = Settings()
+    engine = db.make_engine(settings)
+    db.ensure_ready(settings.model_copy(update={"migrate_on_start": False}), engine)
+    return settings, db.make_sessionmaker(engine)
+
+
+def cmd_token(args: argparse.Namespace) -> int:
+    """Tokens are managed on the database itself (no service call): this is how the first admin
+    token is made. The token text is printed once and never stored."""
+    from service.store import db, repo, tokens
+
+    _, factory = _store()
+    now = datetime.now(UTC)
+    if args.token_action == "create":
+        patterns = [p for chunk in (args.models or ["*"]) for p in chunk.split(",")]
+        try:
+            with db.transaction(factory) as session:
+                made = tokens.create_token(session, role=args.role, models=patterns,
+                                           label=args.label or "", now=now)
+                repo.add_audit(session, actor="cli", action="token.create", model=None,
+                               target=made.prefix, before=None,
+                               after={"role": made.role, "models": list(made.models),
+                                      "label": made.label}, reason="", now=now)
+        except ValueError as exc:
+            print(f"error: {exc}", file=sys.stderr)
+            return EXIT_ERROR
+        if args.json:
+            _print_json({"id": made.id, "token": made.secret, "prefix": made.prefix,
+                         "role": made.role, "models": list(made.models), "label": made.label})
+        else:
+            print(made.secret)
+            print(f"token {made.id} ({made.label}): role {made.role}, models "
+                  f"{', '.join(made.models)}. It is shown this once: store it now.",
+                  file=sys.stderr)
+        return EXIT_OK
+    if args.token_action == "list":
+        with db.read_transaction(factory) as session:
+            rows = tokens.list_tokens(session, include_revoked=args.all)
+            from service.api.routers.tokens import token_view
+
+            views = [token_view(row) for row in rows]
+        if args.json:
+            _print_json(views)
+            return EXIT_OK
+        for v in views:
+            state = f"revoked {v['revoked_at']}" if v["revoked_at"] else (
+                f"last used {v['last_used_at'] or 'never'}")
+            print(f"{v['id']:>4}  {v['prefix']}…  {v['role']:<8}  {','.join(v['models']):<20} "
+                  f"{v['label']:<20} {state}")
+        return EXIT_OK
+    # revoke
+    with db.transaction(factory) as session:
+        try:
+            row = tokens.resolve_ref(session, ref=args.ref)
+        except ValueError as exc:
+            print(f"error: {exc}", file=sys.stderr)
+            return EXIT_ERROR
+        if row is None:
+            print(f"error: no token {args.ref!r} (give its id, prefix or label)", file=sys.stderr)
+            return EXIT_ERROR
+        changed = tokens.revoke_token(session, token=row, now=now)
+        if changed:
+            repo.add_audit(session, actor="cli", action="token.revoke", model=None,
+                           target=row.prefix, before={"revoked": False},
+                           after={"revoked": True}, reason="", now=now)
+        label = f"{row.id} ({row.label})"
+    print(f"token {label} {'revoked' if changed else 'was already revoked'}")
+    return EXIT_OK
+
+
+def cmd_prune(args: argparse.Namespace) -> int:
+    from service.store import db, retention
+
+    settings, factory = _store()
+    days = args.days if args.days is not None else settings.retention_days
+    if days is None:
+        print("error: give --days N or set TIDEGATE_RETENTION_DAYS", file=sys.stderr)
+        return EXIT_ERROR
+    if days < 1:
+        print("error: --days must be at least 1", file=sys.stderr)
+        return EXIT_ERROR
+    now = datetime.now(UTC)
+    with db.transaction(factory) as session:
+        plan = retention.prune(session, cutoff=now - timedelta(days=days), now=now,
+                               dry_run=args.dry_run)
+    summary = plan.to_dict()
+    if args.json:
+        _print_json({**summary, "dry_run": args.dry_run})
+        return EXIT_OK
+    verb = "would prune" if args.dry_run else "pruned"
+    print(f"{verb} the raw samples of {summary['snapshots_pruned']} snapshots older than "
+          f"{days} days ({summary['sample_columns']} columns, {summary['sample_bytes']} bytes); "
+          f"kept {summary['kept_baseline']} baselines, {summary['kept_reference']} references, "
+          f"{summary['kept_unresolved_hold']} unresolved holds. Summaries and verdicts are kept.")
     return EXIT_OK
 
 
@@ -252,12 +375,39 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--host", default="127.0.0.1")
     p.add_argument("--port", type=int, default=8080)
     p.add_argument("--open", action="store_true", help="open mode: no tokens (local use only)")
+    p.add_argument("--workers", type=int, default=1,
+                   help="worker processes (use PostgreSQL for more than one instance)")
     p.set_defaults(func=cmd_serve)
 
     p = sub.add_parser("db", help="database migrations: upgrade, downgrade, current")
     p.add_argument("action", choices=["upgrade", "downgrade", "current"])
     p.add_argument("revision", nargs="?", default=None)
     p.set_defaults(func=cmd_db)
+
+    p = sub.add_parser("token", help="API tokens: create, list, revoke (on the database)")
+    tsub = p.add_subparsers(dest="token_action", required=True)
+    t = tsub.add_parser("create", help="make a token; its text is printed once")
+    t.add_argument("--role", required=True, choices=["viewer", "trainer", "operator", "admin"])
+    t.add_argument("--models", action="append", default=None,
+                   help="model patterns in scope, comma-separated or repeated (default '*')")
+    t.add_argument("--label", default="", help="a name for the audit log")
+    t.add_argument("--json", action="store_true")
+    t.set_defaults(func=cmd_token)
+    t = tsub.add_parser("list", help="the live tokens (never their text)")
+    t.add_argument("--all", action="store_true", help="include revoked tokens")
+    t.add_argument("--json", action="store_true")
+    t.set_defaults(func=cmd_token)
+    t = tsub.add_parser("revoke", help="revoke a token by id, prefix or label")
+    t.add_argument("ref")
+    t.set_defaults(func=cmd_token)
+
+    p = sub.add_parser("prune", help="delete old raw samples (keeps summaries and verdicts)")
+    p.add_argument("--days", type=int, default=None,
+                   help="prune samples older than N days (default TIDEGATE_RETENTION_DAYS)")
+    p.add_argument("--dry-run", action="store_true", help="say what would be pruned, change "
+                   "nothing")
+    p.add_argument("--json", action="store_true")
+    p.set_defaults(func=cmd_prune)
 
     p = sub.add_parser("policy", help="policies: check the policy folder")
     p.add_argument("action", choices=["check"])

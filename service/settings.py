@@ -47,7 +47,7 @@ class Settings(BaseSettings):
         200, ge=1, description="Longest text value in a sample column, key, tag or metric name."
     )
     auth: Literal["tokens", "open"] = Field(
-        "open",
+        "tokens",
         description="tokens: every request needs an API token; open: no checks (demo and local "
         "development only; a warning is printed at start).",
     )
@@ -55,3 +55,7 @@ class Settings(BaseSettings):
         None, ge=1, description="Prune raw samples older than this many days (None: keep all)."
     )
     log_level: str = Field("INFO", description="Log level of the service.")
+    shutdown_grace_seconds: int = Field(
+        30, ge=0, description="On SIGTERM, how long requests in flight may take to finish before "
+        "the service stops anyway, in seconds.",
+    )

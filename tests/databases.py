@@ -209,9 +209,10 @@ def make_api(database_url: str) -> Iterator[Callable[..., Api]]:
     """Build an app (tokens mode, the test policy) on this test's database."""
     clients: list[TestClient] = []
 
-    def build(**overrides: Any) -> Api:
+    def build(*, clock: Callable[[], datetime] | None = None, **overrides: Any) -> Api:
         settings = settings_for(database_url, **overrides)
-        app = create_app(settings, policies=small_policies())
+        extra: dict[str, Any] = {"clock": clock} if clock is not None else {}
+        app = create_app(settings, policies=small_policies(), **extra)
         client = TestClient(app, raise_server_exceptions=False)
         clients.append(client)
         admin = make_token(settings, "admin", label="test-admin").secret
