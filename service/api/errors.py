@@ -78,17 +78,33 @@ async def _storage_error(_request: Request, exc: Exception) -> JSONResponse:
     return response
 
 
-async def _validation_error(_request: Request, exc: Exception) -> JSONResponse:
+def _not_json(request: Request, exc: RequestValidationError) -> bool:
+    """A body sent with a Content-Type other than JSON (the body was not parsed at all)."""
+    if request.method not in {"POST", "PUT", "PATCH"}:
+        return False
+    ctype = request.headers.get("content-type", "").split(";")[0].strip().lower()
+    body_level = any(tuple(err.get("loc", ())) == ("body",) for err in exc.errors())
+    return body_level and not (ctype == "application/json" or ctype.endswith("+json"))
+
+
+async def _validation_error(request: Request, exc: Exception) -> JSONResponse:
     assert isinstance(exc, RequestValidationError)
+    if _not_json(request, exc):
+        return error_response(415, "unsupported_media_type",
+                              "send the body as JSON with Content-Type: application/json")
     details = []
     for err in exc.errors()[:50]:
         kind = str(err.get("type", ""))
         message = str(err.get("msg", "invalid value"))
         if kind == "extra_forbidden":
             message = "unknown field"
+        loc = err.get("loc", ())
         if kind == "json_invalid":
-            message = "body is not valid JSON: " + str(err.get("ctx", {}).get("error", ""))
-        details.append({"field": field_path(err.get("loc", ())), "message": message, "type": kind})
+            where = loc[-1] if loc and isinstance(loc[-1], int) else None
+            message = "body is not valid JSON" + (f" at character {where}" if where else "") + \
+                ": " + str(err.get("ctx", {}).get("error", ""))
+            loc = ()
+        details.append({"field": field_path(loc) or None, "message": message, "type": kind})
     first = details[0] if details else {"field": None, "message": "invalid request"}
     code = "invalid_json" if first.get("type") == "json_invalid" else "invalid_request"
     return error_response(422, code, f"{first['field'] or 'request'}: {first['message']}",
@@ -97,6 +113,10 @@ async def _validation_error(_request: Request, exc: Exception) -> JSONResponse:
 
 async def _http_error(_request: Request, exc: Exception) -> JSONResponse:
     assert isinstance(exc, StarletteHTTPException)
+    if exc.status_code == 400 and isinstance(exc.__cause__, (ValueError, RecursionError)):
+        # the body could not be decoded (not UTF-8) or parsed (nested too deep)
+        return error_response(422, "invalid_json", "body is not valid JSON: "
+                              f"{type(exc.__cause__).__name__}")
     code = _HTTP_CODES.get(exc.status_code, "http_error")
     response = error_response(exc.status_code, code, str(exc.detail))
     if exc.headers:

@@ -24,14 +24,29 @@ def _floats(values: list[float | None]) -> np.ndarray:
     return np.array([np.nan if v is None else v for v in values], dtype=np.float64)
 
 
+def _is_unicode(text: str) -> bool:
+    try:
+        text.encode("utf-8")
+    except UnicodeEncodeError:
+        return False
+    return True
+
+
 def _texts(name: str, values: list[Any], limit: int) -> np.ndarray:
     out = np.empty(len(values), dtype=object)
     for i, value in enumerate(values):
-        if isinstance(value, bool) or not isinstance(value, (str, int)):
+        if isinstance(value, bool) or not isinstance(value, (str, int)) or (
+            isinstance(value, int) and abs(value) > 10**100
+        ):
             raise InvalidInput(
                 f"{name} values must be text or integers", field=f"sample.{name}[{i}]"
             )
         text = str(value)
+        if not _is_unicode(text):
+            raise InvalidInput(
+                f"{name} values must be valid Unicode text (no lone surrogates)",
+                field=f"sample.{name}[{i}]",
+            )
         if len(text) > limit:
             raise InvalidInput(
                 f"{name} value longer than {limit} characters", field=f"sample.{name}[{i}]"
@@ -53,7 +68,7 @@ def to_sample(payload: SampleIn, settings: Settings) -> Sample:
             raise InvalidInput(
                 "unknown sample column; extra columns must be named segment.<name> "
                 "(letters, digits, _ . -; at most 64 characters)",
-                field=f"sample.{name}"[:300],
+                field=f"sample.{name}".encode("utf-8", "backslashreplace").decode()[:300],
             )
         if not isinstance(values, list):
             raise InvalidInput("a segment column must be an array", field=f"sample.{name}")
@@ -93,7 +108,8 @@ def to_sample(payload: SampleIn, settings: Settings) -> Sample:
             dup = uniques[np.argmax(counts > 1)]
             positions = np.nonzero(columns["row_id"].astype(str) == dup)[0]
             raise InvalidInput(
-                f"row_id {dup!r} appears {int(counts.max())} times; row ids must be unique",
+                f"row_id {str(dup)!r} appears {int(counts[counts > 1][0])} times; row ids must "
+                "be unique",
                 field=f"sample.row_id[{int(positions[1])}]",
                 code="duplicate_row_id",
             )

@@ -5,14 +5,26 @@ from __future__ import annotations
 from datetime import datetime
 from typing import Annotated, Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, StringConstraints
+from pydantic import AwareDatetime, BaseModel, ConfigDict, Field, Strict, StringConstraints
 
+# Input types. Numbers are strict (JSON numbers only: no true/false, no "0.5" text); text has
+# no control characters (PostgreSQL text cannot hold NUL; pydantic already refuses lone
+# surrogates); integers that reach the database fit its 64-bit columns.
 Key = Annotated[
     str, StringConstraints(min_length=1, max_length=200, pattern=r"^[^/\\\x00-\x1f\x7f]+$")
 ]
-ShortText = Annotated[str, StringConstraints(max_length=200)]
-FiniteFloat = Annotated[float, Field(allow_inf_nan=False)]
-TextValue = str | int
+ShortText = Annotated[str, StringConstraints(max_length=200, pattern=r"^[^\x00-\x1f\x7f]*$")]
+#: Free text (reasons): line breaks and tabs allowed, other control characters not.
+FreeText = Annotated[
+    str, StringConstraints(min_length=1, max_length=2000,
+                           pattern=r"^[^\x00-\x08\x0b\x0c\x0e-\x1f\x7f]*$")
+]
+Number = Annotated[float, Strict()]
+FiniteFloat = Annotated[float, Strict(), Field(allow_inf_nan=False)]
+BIGINT_MAX = 2**63 - 1
+Count = Annotated[int, Strict(), Field(ge=0, le=BIGINT_MAX)]
+Rank = Annotated[int, Strict(), Field(ge=1, le=1_000_000_000)]
+TextValue = str | Annotated[int, Strict()]
 
 
 class SampleIn(BaseModel):
@@ -26,20 +38,20 @@ class SampleIn(BaseModel):
         },
     )
 
-    score: list[float | None] = Field(
+    score: list[Number | None] = Field(
         description="The candidate's scores; null, NaN and Infinity are kept and judged."
     )
     label: list[FiniteFloat] | None = Field(None, description="Outcome: 0/1 or graded relevance.")
-    baseline_score: list[float | None] | None = Field(
+    baseline_score: list[Number | None] | None = Field(
         None, description="The baseline's scores on the same rows."
     )
-    served_score: list[float | None] | None = Field(
+    served_score: list[Number | None] | None = Field(
         None, description="The score serving logged for the same rows."
     )
     row_id: list[TextValue] | None = Field(None, description="Row identifiers (unique).")
     group: list[TextValue] | None = Field(None, description="Query / request / user of the row.")
     item: list[TextValue] | None = Field(None, description="Recommended item of the row.")
-    rank: list[int] | None = Field(None, description="Position of the item in its group's list.")
+    rank: list[Rank] | None = Field(None, description="Position of the item in its group's list.")
 
 
 class SnapshotCreate(BaseModel):
@@ -49,11 +61,11 @@ class SnapshotCreate(BaseModel):
 
     key: Key = Field(description="The trainer's own key for this snapshot, unique per model.")
     parent: Key | None = Field(None, description="Key of the snapshot this one was trained from.")
-    trained_until: datetime | None = Field(
+    trained_until: AwareDatetime | None = Field(
         None, description="Watermark: the newest interaction the snapshot was trained on."
     )
     code_version: ShortText | None = Field(None, description="Version of the training code.")
-    rows_trained: int | None = Field(None, ge=0, description="Rows trained on in this step.")
+    rows_trained: Count | None = Field(None, description="Rows trained on in this step.")
     tags: dict[ShortText, ShortText] = Field(default_factory=dict, description="Free labels.")
     metrics: dict[ShortText, FiniteFloat] = Field(
         default_factory=dict, description="Metrics the trainer computed itself."
@@ -159,7 +171,7 @@ class BaselineSet(BaseModel):
     model_config = ConfigDict(extra="forbid")
 
     snapshot: Key = Field(description="Key of the snapshot to serve.")
-    reason: Annotated[str, StringConstraints(min_length=1, max_length=2000)] = Field(
+    reason: FreeText = Field(
         description="Why (kept in the audit log)."
     )
 

@@ -74,15 +74,33 @@ def summarise(score: np.ndarray) -> SampleSummary:
         return SampleSummary(count=int(score.size), finite=0, mean=None, std=None, minimum=None,
                              maximum=None)
     lo, hi = float(finite.min()), float(finite.max())
-    counts, edges = np.histogram(finite, bins=HIST_BINS, range=(lo, hi if hi > lo else lo + 1e-9))
+    with np.errstate(over="ignore", invalid="ignore"):
+        mean, std = float(finite.mean()), float(finite.std())
+        quantiles = np.quantile(finite, QUANTILE_LEVELS)
+    edges_counts = _histogram(finite, lo, hi)
     return SampleSummary(
         count=int(score.size),
         finite=int(finite.size),
-        mean=float(finite.mean()),
-        std=float(finite.std()),
+        # finite scores near the float limits can overflow the mean; never store inf or NaN
+        mean=mean if np.isfinite(mean) else None,
+        std=std if np.isfinite(std) else None,
         minimum=lo,
         maximum=hi,
-        quantiles=tuple(float(q) for q in np.quantile(finite, QUANTILE_LEVELS)),
-        hist_edges=tuple(float(e) for e in edges),
-        hist_counts=tuple(int(c) for c in counts),
+        quantiles=tuple(float(q) for q in quantiles) if np.all(np.isfinite(quantiles)) else (),
+        hist_edges=edges_counts[0],
+        hist_counts=edges_counts[1],
     )
+
+
+def _histogram(finite: np.ndarray, lo: float, hi: float) -> tuple[tuple[float, ...], tuple[int, ...]]:
+    """40 equal bins from the lowest to the highest finite score; none when the range cannot be
+    cut into finite bins (scores near the float limits)."""
+    top = hi if hi > lo else lo + max(abs(lo) * 1e-9, 1e-9)
+    try:
+        with np.errstate(over="ignore", invalid="ignore"):
+            counts, edges = np.histogram(finite, bins=HIST_BINS, range=(lo, top))
+    except ValueError:
+        return (), ()
+    if not np.all(np.isfinite(edges)):
+        return (), ()
+    return tuple(float(e) for e in edges), tuple(int(c) for c in counts)

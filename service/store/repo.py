@@ -277,7 +277,7 @@ def decode_cursor(cursor: str) -> int:
         if tag != "v1":
             raise ValueError
         value = int(number)
-        if value < 0:
+        if value < 0 or value > 2**63 - 1:
             raise ValueError
         return value
     except (ValueError, UnicodeDecodeError) as exc:
