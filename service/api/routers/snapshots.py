@@ -88,7 +88,7 @@ def post_snapshot(
         metrics = getattr(request.app.state, "metrics", None)
         if metrics is not None:
             metrics.verdict(model=model, decision=str(detail["decision"]),
-                            seconds=float(result.verdict.duration_ms) / 1000.0)
+                            seconds=float(str(detail["duration_ms"])) / 1000.0)
     response.status_code = 201 if result.created else 200
     return detail
 

@@ -1,0 +1,124 @@
+"""What must hold in a tidegate database whatever happened to it (concurrent posts, a killed
+server, a failed statement): used by the concurrency, crash and fault-injection tests."""
+
+from __future__ import annotations
+
+from collections import Counter
+from dataclasses import dataclass
+
+from sqlalchemy import select, text
+
+from service.settings import Settings
+from service.store import db as store_db
+from service.store.tables import (
+    ModelRow,
+    PromotionRow,
+    SampleColumnRow,
+    SnapshotRow,
+    VerdictRow,
+)
+
+
+@dataclass(frozen=True)
+class StoreState:
+    snapshots: int
+    verdicts: int
+    promotions: int
+    columns: int
+    keys: frozenset[tuple[str, str]]  # (model, snapshot key) of every stored snapshot
+    verdict_of: dict[tuple[str, str], tuple[int, str]]  # (model, key) -> (verdict id, decision)
+
+
+def check_store(url: str, *, columns_per_sample: int | None = None) -> StoreState:
+    """Assert the invariants of a tidegate database and return what it holds.
+
+    * every snapshot has exactly one verdict, and every verdict one snapshot;
+    * a snapshot with sample rows has all its sample columns (``columns_per_sample``) and none
+      is empty of data; nothing half-written;
+    * per model, the promotions form one chain: each promotion's ``previous_id`` is the snapshot
+      of the promotion before it (two candidates never replaced the same baseline), the model's
+      baseline is the last promotion's snapshot, and each verdict that moved the baseline has
+      the promotion that says so;
+    * each verdict was judged against the baseline in force when it was stored;
+    * promoted-by-verdict watermarks only advance;
+    * SQLite: ``PRAGMA integrity_check`` says ok.
+    """
+    engine = store_db.make_engine(Settings(database_url=url))
+    try:
+        with store_db.read_transaction(store_db.make_sessionmaker(engine)) as session:
+            if engine.dialect.name == "sqlite":
+                assert session.execute(text("PRAGMA integrity_check")).scalar() == "ok"
+            models = {m.id: m for m in session.scalars(select(ModelRow))}
+            snapshots = {s.id: s for s in session.scalars(select(SnapshotRow))}
+            verdicts = list(session.scalars(select(VerdictRow).order_by(VerdictRow.id)))
+            promotions = list(session.scalars(select(PromotionRow).order_by(PromotionRow.id)))
+            column_counts = Counter(
+                sid for (sid,) in session.execute(select(SampleColumnRow.snapshot_id))
+            )
+            empty_columns = session.scalar(
+                select(SampleColumnRow.id).where(SampleColumnRow.length < 0)
+            )
+
+            assert empty_columns is None
+            by_snapshot = Counter(v.snapshot_id for v in verdicts)
+            assert set(by_snapshot) == set(snapshots), "a snapshot without a verdict, or the reverse"
+            assert max(by_snapshot.values(), default=1) == 1, "a snapshot with two verdicts"
+            for sid, snap in snapshots.items():
+                if snap.sample_rows and snap.sample_pruned_at is None:
+                    assert column_counts[sid] > 0, f"snapshot {snap.key} lost its sample"
+                    if columns_per_sample is not None:
+                        assert column_counts[sid] == columns_per_sample, f"{snap.key}: half a sample"
+                elif not snap.sample_rows:
+                    assert column_counts[sid] == 0
+
+            for model_id, model in models.items():
+                chain = [p for p in promotions if p.model_id == model_id]
+                previous = None
+                for promotion in chain:
+                    assert promotion.previous_id == previous, (
+                        f"model {model.name}: promotion {promotion.id} replaced {promotion.previous_id}, "
+                        f"but the baseline then was {previous}"
+                    )
+                    previous = promotion.snapshot_id
+                assert model.baseline_id == previous, f"model {model.name}: baseline is not the last"
+                moved = {v.id for v in verdicts if v.model_id == model_id and v.moved_baseline}
+                by_verdict = {p.verdict_id for p in chain if p.cause == "verdict"}
+                assert moved == by_verdict, f"model {model.name}: moved_baseline without a promotion"
+                # replay: each verdict saw the baseline of the last promotion stored before it
+                events = sorted(
+                    [(v.id, 1, v) for v in verdicts if v.model_id == model_id]
+                    + [(p.verdict_id, 2, p) for p in chain if p.cause == "verdict"],
+                    key=lambda e: (e[0], e[1]),
+                )
+                if all(p.cause == "verdict" for p in chain):
+                    current = None
+                    watermark = None
+                    for _, kind, row in events:
+                        if kind == 1:
+                            assert row.baseline_id == current, (
+                                f"model {model.name}: verdict {row.id} judged against {row.baseline_id}, "
+                                f"the baseline was {current}"
+                            )
+                        else:
+                            current = row.snapshot_id
+                            until = snapshots[row.snapshot_id].trained_until
+                            if watermark is not None and until is not None:
+                                assert until > watermark, "a promotion moved the watermark back"
+                            watermark = until if until is not None else watermark
+
+            names = {m.id: m.name for m in models.values()}
+            keys = frozenset((names[s.model_id], s.key) for s in snapshots.values())
+            verdict_of = {
+                (names[snapshots[v.snapshot_id].model_id], snapshots[v.snapshot_id].key): (v.id, v.decision)
+                for v in verdicts
+            }
+            return StoreState(
+                snapshots=len(snapshots),
+                verdicts=len(verdicts),
+                promotions=len(promotions),
+                columns=sum(column_counts.values()),
+                keys=keys,
+                verdict_of=verdict_of,
+            )
+    finally:
+        engine.dispose()
