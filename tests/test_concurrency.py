@@ -119,9 +119,8 @@ def test_begin_immediate_makes_writers_queue_instead_of_failing(sqlite_url: str)
     assert len(errors) == 1 and "locked" in errors[0]
 
 
+@pytest.mark.parametrize("database_url", ["sqlite"], indirect=True)
 def test_every_write_transaction_starts_with_begin_immediate(api: Api) -> None:
-    if not api.settings.database_url.startswith("sqlite"):
-        pytest.skip("SQLite only: PostgreSQL locks the model row instead")
     engine = api.app.state.engine
     seen: list[str] = []
 
