@@ -68,6 +68,8 @@ def log_config(level: str = "INFO") -> dict[str, Any]:
             "uvicorn.error": {"level": level.upper()},
             "uvicorn.access": {"handlers": [], "level": "WARNING", "propagate": False},
         },
+        # everything else (alembic, SQLAlchemy warnings, libraries) as JSON too
+        "root": {"handlers": ["json"], "level": "WARNING"},
     }
 
 

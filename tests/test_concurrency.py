@@ -168,9 +168,11 @@ def test_postgres_locks_the_model_row(postgres_url: str) -> None:
 
 
 def concurrent_posts(post: Callable[[str, dict[str, Any]], Any], *, threads: int = THREADS,
-                     per_thread: int = POSTS_PER_THREAD, model: str = "shelf-ranker",
+                     per_thread: int = POSTS_PER_THREAD,
+                     models: tuple[str, ...] = ("shelf-ranker", "shelf-ranker", "also-read"),
                      ) -> list[tuple[str, int, dict[str, Any]]]:
-    """*threads* clients posting *per_thread* snapshots each to one model at once; a third of
+    """*threads* clients posting *per_thread* snapshots each at once, two thirds to one model
+    and a third to another (posts for different models do not wait for each other); a third of
     the posts are sent twice (a retry racing its original). Watermarks interleave, so whichever
     order the posts land in, some are stale and some promote."""
     barrier = threading.Barrier(threads)
@@ -180,6 +182,7 @@ def concurrent_posts(post: Callable[[str, dict[str, Any]], Any], *, threads: int
         out = []
         for i in range(per_thread):
             step = i * threads + t
+            model = models[step % len(models)]
             body = snapshot_body(f"t{t}-{i}", step=step, seed=step)
             response = post(model, body)
             out.append((body["key"], response.status_code, response.json()))

@@ -182,9 +182,19 @@ def list_snapshots(
 
 
 def record_policy(session: Session, *, policy: Policy, now: datetime) -> None:
-    """Keep the exact text of *policy* by digest (once)."""
+    """Keep the exact text of *policy* by digest (once). Posts for different models do not
+    lock each other, so two may record the same policy at once: insert-if-absent."""
+    dialect = session.get_bind().dialect.name
+    if dialect in {"postgresql", "sqlite"}:
+        insert = pg_insert if dialect == "postgresql" else sqlite_insert
+        session.execute(
+            insert(PolicyRow)
+            .values(name=policy.name, digest=policy.digest, text=policy.text, first_seen_at=now)
+            .on_conflict_do_nothing(index_elements=["digest"])
+        )
+        return
     exists = session.scalars(select(PolicyRow.id).where(PolicyRow.digest == policy.digest)).first()
-    if exists is None:
+    if exists is None:  # pragma: no cover - other dialects
         session.add(PolicyRow(name=policy.name, digest=policy.digest, text=policy.text,
                               first_seen_at=now))
         session.flush()
