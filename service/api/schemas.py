@@ -22,6 +22,8 @@ FreeText = Annotated[
 Number = Annotated[float, Strict()]
 FiniteFloat = Annotated[float, Strict(), Field(allow_inf_nan=False)]
 BIGINT_MAX = 2**63 - 1
+#: Row ids are 32-bit integers (PostgreSQL ``integer``); a larger id in a path is a 422.
+MAX_ID = 2**31 - 1
 Count = Annotated[int, Strict(), Field(ge=0, le=BIGINT_MAX)]
 Rank = Annotated[int, Strict(), Field(ge=1, le=1_000_000_000)]
 TextValue = str | Annotated[int, Strict()]

@@ -287,7 +287,7 @@ def decode_cursor(cursor: str) -> int:
         if tag != "v1":
             raise ValueError
         value = int(number)
-        if value < 0 or value > 2**63 - 1:
+        if value < 0 or value > 2**31 - 1:  # ids are 32-bit integers (PostgreSQL integer)
             raise ValueError
         return value
     except (ValueError, UnicodeDecodeError) as exc:

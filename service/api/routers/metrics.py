@@ -6,6 +6,7 @@ from fastapi import APIRouter, Request
 from fastapi.responses import PlainTextResponse
 
 from service.api.deps import ReaderDep
+from service.api.routers.snapshots import ERRORS
 
 router = APIRouter(tags=["operations"])
 
@@ -15,7 +16,8 @@ CONTENT_TYPE = "text/plain; version=0.0.4; charset=utf-8"
 @router.get(
     "/metrics",
     response_class=PlainTextResponse,
-    responses={200: {"content": {"text/plain": {"schema": {"type": "string"}}}}},
+    responses={200: {"content": {"text/plain": {"schema": {"type": "string"}}}},
+               **{k: v for k, v in ERRORS.items() if k in (401, 403)}},
     summary="Metrics in the Prometheus text format (series of models outside the token's scope "
     "are left out)",
 )

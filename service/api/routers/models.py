@@ -17,7 +17,7 @@ from service.store import repo
 router = APIRouter(prefix="/v1/models", tags=["models"])
 
 
-@router.get("", response_model=ModelList, summary="Every model with its baseline and last verdict")
+@router.get("", response_model=ModelList, responses=ERRORS, summary="Every model with its baseline and last verdict")
 def list_models(db: DbDep, clock: ClockDep, principal: ReaderDep) -> dict[str, object]:
     now = clock()
     with db.read() as session:

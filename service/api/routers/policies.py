@@ -5,6 +5,7 @@ from __future__ import annotations
 from fastapi import APIRouter
 
 from service.api.deps import DbDep, PoliciesDep, Principal, ReaderDep
+from service.api.routers.snapshots import ERRORS
 from service.api.schemas import PolicyList
 from service.gate.policy import Policy, select_policy
 from service.store import repo
@@ -26,7 +27,7 @@ def visible_policies(policies: list[Policy], principal: Principal, db: DbDep) ->
     ]
 
 
-@router.get("", response_model=PolicyList, summary="The policies in force, with their digests")
+@router.get("", response_model=PolicyList, responses=ERRORS, summary="The policies in force, with their digests")
 def list_policies(policies: PoliciesDep, principal: ReaderDep, db: DbDep) -> dict[str, object]:
     data = [
         {

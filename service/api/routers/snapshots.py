@@ -20,10 +20,16 @@ router = APIRouter(prefix="/v1/models/{model}/snapshots", tags=["snapshots"])
 MODEL_NAME = r"^[A-Za-z0-9][A-Za-z0-9._-]{0,99}$"
 ModelPath = Path(description="Model name: letters, digits, . _ - (at most 100).", max_length=100)
 ERRORS = {
+    401: {"model": ErrorResponse, "description": "No valid API token"},
+    403: {"model": ErrorResponse, "description": "The token's role or model scope does not "
+          "allow this"},
     404: {"model": ErrorResponse},
     409: {"model": ErrorResponse},
     413: {"model": ErrorResponse},
+    415: {"model": ErrorResponse},
     422: {"model": ErrorResponse},
+    503: {"model": ErrorResponse, "description": "The database did not complete the request "
+          "(nothing was stored; retry)"},
 }
 
 

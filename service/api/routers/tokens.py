@@ -10,6 +10,7 @@ from pydantic import BaseModel, ConfigDict, Field, StringConstraints
 
 from service.api.deps import AdminDep, ClockDep, DbDep
 from service.api.routers.snapshots import ERRORS
+from service.api.schemas import MAX_ID
 from service.errors import InvalidInput, NotFound
 from service.store import repo, tokens
 from service.store.tables import TokenRow
@@ -103,7 +104,7 @@ def create_token(
                summary="Revoke a token")
 def revoke_token(
     db: DbDep, clock: ClockDep, principal: AdminDep,
-    token_id: Annotated[int, Path(ge=1, le=2**63 - 1)],
+    token_id: Annotated[int, Path(ge=1, le=MAX_ID)],
 ) -> dict[str, object]:
     now = clock()
     with db.transaction() as session:

@@ -9,7 +9,7 @@ from fastapi import APIRouter, Path
 from service import views
 from service.api.deps import DbDep, ReaderDep
 from service.api.routers.snapshots import ERRORS
-from service.api.schemas import VerdictPublic
+from service.api.schemas import MAX_ID, VerdictPublic
 from service.errors import NotFound
 from service.store import repo
 from service.store.tables import ModelRow
@@ -20,7 +20,7 @@ router = APIRouter(prefix="/v1/verdicts", tags=["verdicts"])
 @router.get("/{verdict_id}", response_model=VerdictPublic, responses=ERRORS,
             summary="One verdict with all findings")
 def get_verdict(
-    verdict_id: Annotated[int, Path(ge=1, le=2**63 - 1)], db: DbDep, principal: ReaderDep
+    verdict_id: Annotated[int, Path(ge=1, le=MAX_ID)], db: DbDep, principal: ReaderDep
 ) -> dict[str, object]:
     with db.read() as session:
         verdict = repo.get_verdict(session, verdict_id=verdict_id)
