@@ -102,7 +102,8 @@ class RequestContext:
             log.info(
                 "%s %s %s", scope.get("method"), scope.get("path"), state["status"],
                 extra=logs.fields(
-                    method=scope.get("method"), path=scope.get("path"), route=route,
+                    request_id=rid, method=scope.get("method"), path=scope.get("path"),
+                    route=route,
                     status=state["status"], error=state["code"],
                     duration_ms=round(seconds * 1000.0, 3),
                     actor=getattr(principal, "name", None),
