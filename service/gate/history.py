@@ -62,13 +62,14 @@ def select_history(
     excluded = dict.fromkeys(EXCLUSION_REASONS, 0)
     since = now - timedelta(hours=window_hours) if window_hours is not None else None
     scanned = 0
-    for entry in history:
+    for index, entry in enumerate(history):
         if len(values) >= window:
             break
-        scanned += 1
         if since is not None and entry.created_at < since:
-            excluded["outside time window"] += 1
-            continue
+            # Newest first: everything from here on is older still.
+            excluded["outside time window"] += len(history) - index
+            break
+        scanned += 1
         if entry.effective_decision == "hold":
             excluded["held"] += 1
             continue

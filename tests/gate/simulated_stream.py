@@ -33,8 +33,8 @@ START = datetime(2026, 12, 1, tzinfo=UTC)
 #: approximation, Yurdakul 2018): "hold any shift beyond sampling noise".
 STATIC_PSI = round(psi_null_quantile(ROWS, ROWS, BINS, 0.999), 4)
 #: The creep's total size, in logit units of the score: a one-step jump of this size has
-#: PSI near 0.16, above both the static limit and the 0.1 common-practice band.
-CREEP_TOTAL = 0.4
+#: PSI near 0.25, above both the static limit and the 0.1 common-practice band.
+CREEP_TOTAL = 0.5
 CREEP_STEPS = 48
 
 POLICY_HEAD = f"""
@@ -167,12 +167,19 @@ def healthy_stream(count: int = 200, seed: int = 20261201) -> list[Snapshot]:
 
 
 def creep_stream(
-    warmup: int = 100, steps: int = CREEP_STEPS, total: float = CREEP_TOTAL, seed: int = 7
+    warmup: int = 100,
+    steps: int = CREEP_STEPS,
+    total: float = CREEP_TOTAL,
+    seed: int = 7,
+    *,
+    at_once: bool = False,
 ) -> list[Snapshot]:
-    """*warmup* healthy pushes, then *steps* pushes each moving the scores by total / steps."""
+    """*warmup* healthy pushes, then *steps* pushes each moving the scores by total / steps
+    (with *at_once*, the whole *total* arrives with the first of them)."""
     count = warmup + steps + 1
     mu, sigma = natural_parameters(count, seed)
-    creep = np.concatenate([np.zeros(warmup + 1), np.arange(1, steps + 1) * total / steps])
+    ramp = np.full(steps, total) if at_once else np.arange(1, steps + 1) * total / steps
+    creep = np.concatenate([np.zeros(warmup + 1), ramp])
     rng = np.random.default_rng(seed + 1)
     return [snapshot(t, mu[t] + creep[t], sigma[t], rng) for t in range(count)]
 

@@ -8,7 +8,6 @@ from sklearn.metrics import auc
 
 from service.stats import lists
 
-
 # --- Gini coefficient -----------------------------------------------------------------------
 
 
@@ -107,7 +106,7 @@ def test_mean_popularity_and_list_share_popularity() -> None:
     baseline = {"g1": ("a", "b"), "g2": ("a", "c"), "g3": ("d", "e"), "g4": ("a", "f")}
     popularity = lists.list_share_popularity(baseline)
     assert popularity["a"] == pytest.approx(0.75) and popularity["f"] == pytest.approx(0.25)
-    collapsed = {g: ("a", "b") for g in baseline}
+    collapsed = dict.fromkeys(baseline, ("a", "b"))
     assert lists.mean_popularity(collapsed, popularity) == pytest.approx((0.75 + 0.25) / 2)
     assert lists.mean_popularity({"g": ("zzz",)}, popularity) == 0.0
 
