@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import pytest
 
-from simulated_stream import (  # type: ignore[import-not-found]
+from tests.gate.simulated_stream import (
     CREEP_STEPS,
     STATIC_PSI,
     creep_stream,
