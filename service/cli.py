@@ -191,7 +191,11 @@ def cmd_baseline_set(args: argparse.Namespace) -> int:
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
-    from fastapi.testclient import TestClient
+    import warnings
+
+    with warnings.catch_warnings():  # the in-process client's transport notice is noise here
+        warnings.simplefilter("ignore")
+        from fastapi.testclient import TestClient
 
     from service import demo
     from service.app import create_app
@@ -305,7 +309,9 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    logging.basicConfig(level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s %(message)s")
+    logging.basicConfig(
+        level=logging.WARNING, format="%(asctime)s %(levelname)s %(name)s %(message)s"
+    )
     args = build_parser().parse_args(argv)
     try:
         return int(args.func(args))
