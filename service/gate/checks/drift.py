@@ -15,7 +15,7 @@ from typing import Any, Literal
 import numpy as np
 from pydantic import Field, field_validator
 
-from service.gate.checks.base import CheckConfig, CheckContext, register, skipped
+from service.gate.checks.base import CheckConfig, CheckContext, format_p, register, skipped
 from service.gate.types import Finding
 from service.stats import drift as drift_stats
 
@@ -100,7 +100,7 @@ def run_drift(config: DriftConfig, ctx: CheckContext) -> list[Finding]:
     significant = config.alpha is None or (result.pvalue is not None and result.pvalue < config.alpha)
     breach = over and significant
     label = result.label or config.statistic
-    ptext = "" if result.pvalue is None else f", p = {result.pvalue:.3g}"
+    ptext = "" if result.pvalue is None else f", {format_p(result.pvalue)}"
     if breach:
         message = f"score {label} {result.value:.3g} vs {config.against} exceeds {config.max:g}{ptext}"
     elif over:
