@@ -187,6 +187,46 @@ def cmd_baseline_set(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def cmd_reference(args: argparse.Namespace) -> int:
+    from service.client import ClientError
+
+    snapshot = args.snapshot if args.reference_action == "pin" else None
+    try:
+        with _client(args) as client:
+            result = client.set_reference(args.model, snapshot, args.reason)
+    except ClientError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_ERROR
+    if args.json:
+        _print_json(result)
+        return EXIT_OK
+    now = result["reference"] or "none pinned (the policy's lag_hours applies, if set)"
+    print(f"{result['model']}: reference is now {now} (was {result['previous'] or 'none'})")
+    return EXIT_OK
+
+
+def cmd_models(args: argparse.Namespace) -> int:
+    from service.client import ClientError
+    from service.gate.history import format_age
+
+    try:
+        with _client(args) as client:
+            models = client.models()
+    except ClientError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_ERROR
+    if args.json:
+        _print_json(models)
+        return EXIT_OK
+    for m in models:
+        last = m["last_verdict"]["decision"] if m["last_verdict"] else "-"
+        age = m["baseline_age_seconds"]
+        serving = f"{m['baseline'] or '-'} ({format_age(age)} ago)" if age is not None else "-"
+        state = "STUCK: " + m["stuck"]["message"] if m["stuck"]["stuck"] else ""
+        print(f"{m['name']:<20} baseline {serving:<36} last {last:<8} {state}".rstrip())
+    return EXIT_OK
+
+
 # --- demo -----------------------------------------------------------------------------------
 
 
@@ -296,6 +336,24 @@ def build_parser() -> argparse.ArgumentParser:
     b.add_argument("--reason", required=True)
     remote(b)
     b.set_defaults(func=cmd_baseline_set)
+
+    p = sub.add_parser("reference", help="pin or unpin a model's reference snapshot")
+    rsub = p.add_subparsers(dest="reference_action", required=True)
+    r = rsub.add_parser("pin", help="make SNAPSHOT the reference of MODEL")
+    r.add_argument("model")
+    r.add_argument("snapshot")
+    r.add_argument("--reason", required=True)
+    remote(r)
+    r.set_defaults(func=cmd_reference)
+    r = rsub.add_parser("unpin", help="drop MODEL's pinned reference (lag_hours applies again)")
+    r.add_argument("model")
+    r.add_argument("--reason", required=True)
+    remote(r)
+    r.set_defaults(func=cmd_reference)
+
+    p = sub.add_parser("models", help="every model: its baseline, last verdict, stuck or not")
+    remote(p)
+    p.set_defaults(func=cmd_models)
 
     p = sub.add_parser("demo", help="load the invented bookshop scenario and serve it")
     p.add_argument("--db", default="tidegate-demo.db", help="SQLite file (recreated)")

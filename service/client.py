@@ -101,3 +101,9 @@ class TidegateClient:
         return self.request(  # type: ignore[no-any-return]
             "PUT", f"/v1/models/{model}/baseline", json={"snapshot": snapshot, "reason": reason}
         )
+
+    def set_reference(self, model: str, snapshot: str | None, reason: str) -> dict[str, Any]:
+        """Pin *snapshot* as the model's reference; None unpins."""
+        return self.request(  # type: ignore[no-any-return]
+            "PUT", f"/v1/models/{model}/reference", json={"snapshot": snapshot, "reason": reason}
+        )

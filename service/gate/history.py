@@ -101,10 +101,10 @@ def consecutive_holds(history: Sequence[HistoryEntry]) -> int:
 def format_age(seconds: float) -> str:
     """A short human reading of a duration: ``40 s``, ``25 min``, ``6 h``, ``3 d``."""
     seconds = max(0.0, seconds)
-    if seconds < 90:
+    if seconds < 60:
         return f"{seconds:.0f} s"
     minutes = seconds / 60
-    if minutes < 90:
+    if minutes < 59.5:
         return f"{minutes:.0f} min"
     hours = minutes / 60
     if hours < 48:
