@@ -31,3 +31,20 @@ def test_replay_counts_and_changes(make_harness) -> None:  # type: ignore[no-unt
     held = {k for k, d in stored.items() if d == "hold"}
     assert "s2" in held
     assert {r["snapshot"] for r in result["data"] if r["changed"]} == held
+
+
+def test_replay_route_and_errors(make_harness) -> None:  # type: ignore[no-untyped-def]
+    h = make_harness({"p": POLICY})
+    h.post("m", body("s0", seed=0))
+    h.clock.advance(minutes=15)
+    h.post("m", body("s1", seed=1, shift=0.3, minute=15))
+    r = h.client.post("/v1/models/m/replay", json={"limit": 10})
+    assert r.status_code == 200, r.text
+    assert r.json()["summary"]["held_then"] == 1 and r.json()["summary"]["changed"] == 0
+    r = h.client.post("/v1/models/m/replay", json={"policy": 'models = ["*"]\nbad = 1\n'})
+    assert r.status_code == 422
+    assert r.json()["error"]["code"] == "invalid_policy"
+    assert "key 'bad': unknown key" in r.json()["error"]["message"]
+    assert h.client.post("/v1/models/zz/replay", json={}).status_code == 404
+    # nothing was stored by replays
+    assert len(h.client.get("/v1/models/m/verdicts").json()["data"]) == 2
