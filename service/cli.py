@@ -187,6 +187,37 @@ def cmd_baseline_set(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def cmd_replay(args: argparse.Namespace) -> int:
+    from service.client import ClientError
+
+    text = None
+    if args.policy:
+        try:
+            text = Path(args.policy).read_text("utf-8")
+        except OSError as exc:
+            print(f"error: cannot read {args.policy}: {exc}", file=sys.stderr)
+            return EXIT_ERROR
+    try:
+        with _client(args) as client:
+            result = client.replay(args.model, text, args.limit)
+    except ClientError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_ERROR
+    if args.json:
+        _print_json(result)
+        return EXIT_OK
+    s = result["summary"]
+    print(f"{result['model']} replayed under {result['policy']} ({result['policy_digest']})")
+    print(f"  {s['snapshots']} snapshots: held then {s['held_then']}, held by replay "
+          f"{s['held_by_replay']}, changed {s['changed']}; overridden holds still held "
+          f"{s['overridden_holds_still_held']}; samples pruned {s['samples_pruned']}")
+    for row in result["data"]:
+        if row["changed"]:
+            reason = row["replay_reasons"][0] if row["replay_reasons"] else ""
+            print(f"  {row['snapshot']:<24} {row['decision']} -> {row['replay_decision']} {reason}")
+    return EXIT_OK
+
+
 def cmd_reference(args: argparse.Namespace) -> int:
     from service.client import ClientError
 
@@ -336,6 +367,13 @@ def build_parser() -> argparse.ArgumentParser:
     b.add_argument("--reason", required=True)
     remote(b)
     b.set_defaults(func=cmd_baseline_set)
+
+    p = sub.add_parser("replay", help="judge a model's past snapshots again under a policy")
+    p.add_argument("model")
+    p.add_argument("--policy", default=None, help="policy TOML file (default: the one in force)")
+    p.add_argument("--limit", type=int, default=100)
+    remote(p)
+    p.set_defaults(func=cmd_replay)
 
     p = sub.add_parser("reference", help="pin or unpin a model's reference snapshot")
     rsub = p.add_subparsers(dest="reference_action", required=True)

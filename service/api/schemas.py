@@ -242,3 +242,35 @@ class ErrorResponse(BaseModel):
 class Health(BaseModel):
     status: Literal["ok", "not_ready"]
     detail: dict[str, Any] = Field(default_factory=dict)
+
+
+class ReplayRequest(BaseModel):
+    """Judge past snapshots again under a policy (the one in force when omitted)."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    policy: Annotated[str, StringConstraints(max_length=200_000)] | None = Field(
+        None, description="Policy TOML text to try; omitted: the policy in force."
+    )
+    limit: int = Field(100, ge=1, le=1000, description="How many of the latest verdicts.")
+
+
+class ReplayRow(BaseModel):
+    verdict_id: int
+    snapshot: str
+    created_at: str
+    baseline: str | None = None
+    decision: Literal["promote", "hold"]
+    effective_decision: Literal["promote", "hold"]
+    replay_decision: Literal["promote", "hold"]
+    replay_reasons: list[str]
+    changed: bool
+    sample_pruned: bool
+
+
+class ReplayPublic(BaseModel):
+    model: str
+    policy: str
+    policy_digest: str
+    summary: dict[str, Any]
+    data: list[ReplayRow]

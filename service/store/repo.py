@@ -425,8 +425,11 @@ def _promotion_state(session: Session, *, model_id: int) -> _Promoted:
     return _Promoted(ever, rolled_back)
 
 
-def history(session: Session, *, model_id: int, limit: int) -> tuple[HistoryEntry, ...]:
-    """The model's last *limit* verdicts, newest first, as the gate's history.
+def history(
+    session: Session, *, model_id: int, limit: int, before_id: int | None = None
+) -> tuple[HistoryEntry, ...]:
+    """The model's last *limit* verdicts (before verdict *before_id*, when given), newest
+    first, as the gate's history.
 
     ``healthy``: it ended as ``promote`` (by its verdict or an override), it became the
     baseline, and it was not the baseline that a rollback replaced. Whether an overridden hold
@@ -435,13 +438,14 @@ def history(session: Session, *, model_id: int, limit: int) -> tuple[HistoryEntr
     """
     if limit <= 0:
         return ()
-    rows = session.execute(
+    stmt = (
         select(VerdictRow, SnapshotRow)
         .join(SnapshotRow, SnapshotRow.id == VerdictRow.snapshot_id)
         .where(VerdictRow.model_id == model_id)
-        .order_by(VerdictRow.id.desc())
-        .limit(limit)
-    ).all()
+    )
+    if before_id is not None:
+        stmt = stmt.where(VerdictRow.id < before_id)
+    rows = session.execute(stmt.order_by(VerdictRow.id.desc()).limit(limit)).all()
     overrides = overrides_for(session, verdict_ids=[v.id for v, _ in rows])
     state = _promotion_state(session, model_id=model_id)
     entries = []

@@ -8,7 +8,7 @@ from typing import Annotated, Literal
 from fastapi import APIRouter, Query
 
 from service import intake, views
-from service.api.deps import ClockDep, DbDep, PoliciesDep, PrincipalDep
+from service.api.deps import ClockDep, DbDep, PoliciesDep, PrincipalDep, SettingsDep
 from service.api.routers.snapshots import ERRORS, ModelPath
 from service.api.schemas import (
     BaselinePublic,
@@ -17,9 +17,13 @@ from service.api.schemas import (
     ModelPublic,
     ReferencePublic,
     ReferenceSet,
+    ReplayPublic,
+    ReplayRequest,
     VerdictList,
 )
 from service.errors import InvalidInput, NotFound
+from service.gate.policy import PolicyError, parse_policy, select_policy
+from service.replay import replay
 from service.store import repo
 
 router = APIRouter(prefix="/v1/models", tags=["models"])
@@ -110,6 +114,36 @@ def set_baseline(
         "previous": previous.key if previous else None,
         "cause": cause,
     }
+
+
+@router.post(
+    "/{model}/replay",
+    response_model=ReplayPublic,
+    responses=ERRORS,
+    summary="Judge the model's past snapshots again under a policy; stores nothing",
+)
+def replay_model(
+    body: ReplayRequest,
+    db: DbDep,
+    policies: PoliciesDep,
+    settings: SettingsDep,
+    model: str = ModelPath,
+) -> dict[str, object]:
+    if body.policy is None:
+        policy = select_policy(policies, model)
+        if policy is None:
+            raise InvalidInput(f"no policy matches model {model!r}; send one", field="policy")
+    else:
+        try:
+            policy = parse_policy(body.policy, name="replay", path="(request)")
+        except PolicyError as exc:
+            raise InvalidInput(str(exc), field="policy", code="invalid_policy") from None
+    with db.transaction() as session:
+        result = replay(
+            session, model_name=model, policy=policy, limit=body.limit,
+            history_limit=settings.history_limit,
+        )
+    return result.to_dict()
 
 
 @router.put(
