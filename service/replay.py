@@ -72,6 +72,7 @@ def replay(session: Session, *, model_name: str, policy: Policy, limit: int,
     pairs.reverse()
     overrides = repo.overrides_for(session, verdict_ids=[v.id for v, _ in pairs])
     result = ReplayResult(model_name, policy.name, policy.digest)
+    depth = max(history_limit, policy.history_depth())
     cache: dict[int, Any] = {}
 
     def gate_snapshot(snapshot_id: int | None) -> Any:
@@ -89,7 +90,7 @@ def replay(session: Session, *, model_name: str, policy: Policy, limit: int,
         baseline = gate_snapshot(verdict.baseline_id)
         try:
             earlier = repo.history(
-                session, model_id=model.id, limit=history_limit, before_id=verdict.id
+                session, model_id=model.id, limit=depth, before_id=verdict.id
             )
             inp = GateInput(
                 candidate=candidate,
