@@ -68,6 +68,8 @@ class World:
                 snapshot_body(f"walk-{self.serial}", step=10 + self.serial),
             ("PUT", "/v1/models/{model}/baseline"): {"snapshot": "k1", "reason": "walk"},
             ("POST", "/v1/tokens"): {"role": "viewer", "models": ["x"]},
+            ("POST", "/v1/models/{model}/replay"): {"limit": 5},
+            ("PUT", "/v1/models/{model}/reference"): {"snapshot": "k1", "reason": "walk"},
         }
         return bodies.get((method, path))
 
