@@ -66,13 +66,16 @@ def burst_bodies() -> list[list[tuple[str, dict[str, Any]]]]:
 
 
 def run_burst(server: Server, token: str, kill_after: int
-              ) -> tuple[dict[tuple[str, str], dict[str, Any]], list[tuple[str, dict[str, Any]]]]:
+              ) -> tuple[dict[tuple[str, str], dict[str, Any]], list[tuple[str, dict[str, Any]]],
+                         int]:
     """Post from CLIENTS threads; SIGKILL the server after *kill_after* acknowledgements.
-    Returns the acknowledged verdicts and the posts that got no acknowledgement."""
+    Returns the acknowledged verdicts, the posts that got no acknowledgement, and how many
+    posts were in flight (sent, not answered) when the signal went."""
     acked: dict[tuple[str, str], dict[str, Any]] = {}
     unacked: list[tuple[str, dict[str, Any]]] = []
     lock = threading.Lock()
     killed = threading.Event()
+    in_flight = {"now": 0, "at_kill": 0}
 
     def client(posts: list[tuple[str, dict[str, Any]]]) -> None:
         with httpx.Client(base_url=server.url, timeout=30.0,
@@ -82,23 +85,29 @@ def run_burst(server: Server, token: str, kill_after: int
                     with lock:
                         unacked.extend(posts[n:])
                     return
+                with lock:
+                    in_flight["now"] += 1
                 try:
                     response = http.post(f"/v1/models/{model}/snapshots", json=body)
                 except httpx.HTTPError:
                     with lock:
                         unacked.extend(posts[n:])
                     return
+                finally:
+                    with lock:
+                        in_flight["now"] -= 1
                 assert response.status_code == 201, response.text
                 with lock:
                     acked[(model, body["key"])] = response.json()
                     if len(acked) >= kill_after and not killed.is_set():
                         killed.set()
+                        in_flight["at_kill"] = in_flight["now"]
                         server.signal(signal.SIGKILL)
 
     with ThreadPoolExecutor(CLIENTS) as pool:
         list(pool.map(client, burst_bodies()))
     server.wait()
-    return acked, unacked
+    return acked, unacked, in_flight["at_kill"]
 
 
 def test_sigkill_mid_burst_loses_no_acknowledged_post(
@@ -108,7 +117,7 @@ def test_sigkill_mid_burst_loses_no_acknowledged_post(
     runs = []
     for kill_after in KILL_AFTER:
         server.start()
-        acked, unacked = run_burst(server, trainer, kill_after)
+        acked, unacked, in_flight = run_burst(server, trainer, kill_after)
         assert len(acked) >= kill_after
         before = check_store(database_url)  # nothing half-written, integrity ok, one chain
         server.start()  # restart on the same database
@@ -134,6 +143,7 @@ def test_sigkill_mid_burst_loses_no_acknowledged_post(
         runs.append({
             "kill_after_acks": kill_after,
             "posts": CLIENTS * POSTS_PER_CLIENT,
+            "in_flight_at_kill": in_flight,
             "acknowledged": len(acked),
             "acknowledged_found_after_restart": found,
             "unacknowledged": len(unacked),
