@@ -127,6 +127,26 @@ def psi_null_quantile(n: int, m: int, bins: int, q: float) -> float:
     return float((1.0 / n + 1.0 / m) * sps.chi2.ppf(q, bins - 1))
 
 
+def _ecdf_at_own_values(sorted_values: np.ndarray) -> np.ndarray:
+    """``#{v <= sorted_values[i]}`` for each i: the index after the last of i's tie run."""
+    n = sorted_values.size
+    last = np.empty(n, dtype=bool)
+    last[-1] = True
+    np.not_equal(sorted_values[1:], sorted_values[:-1], out=last[:-1])
+    ends = np.flatnonzero(last) + 1
+    if ends.size == n:  # no ties
+        return ends
+    # Each position takes the end of its tie run: runs are contiguous in sorted order.
+    return np.repeat(ends, np.diff(np.concatenate(([0], ends))))
+
+
+def _max_gap_at_own_values(a: np.ndarray, b: np.ndarray) -> float:
+    """``max_i |F_a(a_i) - F_b(a_i)|`` for sorted *a* and *b*."""
+    own = _ecdf_at_own_values(a) / a.size
+    other = np.searchsorted(b, a, side="right") / b.size
+    return float(np.max(np.abs(own - other)))
+
+
 def ks_2samp(baseline: object, candidate: object) -> KSResult:
     """Two-sample Kolmogorov–Smirnov test, two-sided [1].
 
@@ -144,18 +164,18 @@ def ks_2samp(baseline: object, candidate: object) -> KSResult:
 
     Notes
     -----
-    O((n + m) log(n + m)): both samples are sorted once and every value located in each by
-    binary search. For large samples the critical value at level 0.05 is close to
+    O((n + m) log(n + m)): both samples are sorted once, then each sample's values are located
+    in the other by binary search with sorted queries (scipy searches the pooled, unsorted
+    values instead). For large samples the critical value at level 0.05 is close to
     ``1.358 * sqrt((n + m) / (n m))`` (Smirnov's asymptotic table).
     """
     x = np.sort(finite_1d(baseline, "baseline"))
     y = np.sort(finite_1d(candidate, "candidate"))
     n, m = x.size, y.size
-    # Both ECDFs only change at sample values; evaluating at every value of both finds the sup.
-    grid = np.concatenate([x, y])
-    cdf_x = np.searchsorted(x, grid, side="right") / n
-    cdf_y = np.searchsorted(y, grid, side="right") / m
-    d = float(np.max(np.abs(cdf_x - cdf_y)))
+    # Both ECDFs only change at sample values, so the sup is attained at one of them. At x's
+    # own values F_n is known from the sort (ties: the last of each run), and G_m comes from a
+    # binary search with sorted queries; the same for y's values.
+    d = max(_max_gap_at_own_values(x, y), _max_gap_at_own_values(y, x))
     en = float(np.round(n * m / (n + m)))
     pvalue = float(np.clip(sps.kstwo.sf(d, en), 0.0, 1.0))
     return KSResult(statistic=d, pvalue=pvalue, n_baseline=n, n_candidate=m)

@@ -1,0 +1,162 @@
+"""Segments: run a check on the whole sample and on each value of ``segment.<name>`` columns.
+
+A check that lists ``segments = ["device", "reader_tenure"]`` is run once on all rows (the unit
+``"(all)"``) and once per value of each listed column (``"device=app"``, ``"device=web"``, ...),
+each column on its own (no cross product). Values with fewer than ``min_segment_rows`` rows are
+reported as too small and left out. The p-values of the units that ran form one family and are
+adjusted together (Holm by default, Benjamini–Hochberg on request), so adding segments does not
+raise the rate of false holds [1], [2].
+
+References
+----------
+1. Holm, S. (1979). Scandinavian Journal of Statistics 6(2), 65–70.
+2. Benjamini, Y. & Hochberg, Y. (1995). Journal of the Royal Statistical Society B 57(1), 289–300.
+"""
+
+from __future__ import annotations
+
+import weakref
+from dataclasses import dataclass
+from typing import Literal
+
+import numpy as np
+from pydantic import Field
+
+from service.gate.checks.base import CheckConfig
+from service.gate.types import SEGMENT_PREFIX, Sample
+from service.stats.grouping import Codes, factorize
+
+ALL = "(all)"
+
+
+class SegmentKeys(CheckConfig):
+    """Keys shared by checks that can run per segment."""
+
+    segments: list[str] = Field(
+        default_factory=list,
+        description="Segment column names (without 'segment.') to also run the check per value of.",
+    )
+    min_segment_rows: int = Field(
+        1000, ge=1, description="Segment values with fewer rows are reported but not tested."
+    )
+
+
+class CorrectedSegmentKeys(SegmentKeys):
+    """Segment keys for checks with p-values: how the family of p-values is adjusted."""
+
+    correction: Literal["holm", "bh"] = Field(
+        "holm", description="Multiple-testing adjustment over segments: holm or bh."
+    )
+
+
+@dataclass(frozen=True)
+class Unit:
+    """One row selection a check runs on: all rows, or one segment value."""
+
+    label: str
+    column: str | None
+    value: str | None
+    #: Index of ``value`` among the column's sorted distinct values.
+    index: int | None
+    #: Row indices into the sample (None: every row).
+    rows: np.ndarray | None
+
+
+_CODES: dict[int, tuple[weakref.ref[np.ndarray], Codes]] = {}
+
+
+def codes_of(column: np.ndarray, name: str) -> Codes:
+    """Codes of a text column, remembered while the array lives (checks share a sample)."""
+    key = id(column)
+    hit = _CODES.get(key)
+    if hit is not None and hit[0]() is column:
+        return hit[1]
+    codes = factorize(column, name)
+
+    def forget(_: object, key: int = key) -> None:
+        _CODES.pop(key, None)
+
+    _CODES[key] = (weakref.ref(column, forget), codes)
+    return codes
+
+
+def segment_column(sample: Sample, name: str) -> np.ndarray | None:
+    return sample.column(SEGMENT_PREFIX + name)
+
+
+@dataclass(frozen=True)
+class Split:
+    """The units to run, and the segment values that were too small or absent."""
+
+    units: list[Unit]
+    too_small: list[dict[str, object]]
+    missing_columns: list[str]
+
+
+def split(sample: Sample, names: list[str], min_rows: int, *, keep: np.ndarray | None = None) -> Split:
+    """Units for *sample*: ``(all)`` first, then each value of each named segment column.
+
+    *keep* (row indices) restricts every unit to those rows (e.g. rows with finite inputs);
+    unit ``rows`` are then indices into the kept rows.
+    """
+    units = [Unit(ALL, None, None, None, None)]
+    too_small: list[dict[str, object]] = []
+    missing: list[str] = []
+    for name in names:
+        column = segment_column(sample, name)
+        if column is None:
+            missing.append(name)
+            continue
+        codes = codes_of(column, SEGMENT_PREFIX + name)
+        row_codes = codes.codes if keep is None else codes.codes[keep]
+        counts = np.bincount(row_codes, minlength=codes.n_values)
+        for index, value in enumerate(codes.values):
+            label = f"{name}={value}"
+            if counts[index] < min_rows:
+                too_small.append({"segment": label, "rows": int(counts[index])})
+                continue
+            units.append(Unit(label, name, value, index, np.flatnonzero(row_codes == index)))
+    return Split(units=units, too_small=too_small, missing_columns=missing)
+
+
+def matching_rows(sample: Sample, unit: Unit, *, keep: np.ndarray | None = None) -> np.ndarray | None:
+    """Rows of another sample (the baseline's own) in the same segment as *unit*.
+
+    None means every row (unit ``(all)``); raises ValueError when the column is absent.
+    """
+    if unit.column is None:
+        return None
+    column = segment_column(sample, unit.column)
+    if column is None:
+        raise ValueError(f"the other sample has no column 'segment.{unit.column}'")
+    codes = codes_of(column, SEGMENT_PREFIX + unit.column)
+    row_codes = codes.codes if keep is None else codes.codes[keep]
+    if unit.value not in codes.values:
+        return np.empty(0, dtype=np.int64)
+    return np.flatnonzero(row_codes == codes.values.index(unit.value))
+
+
+def kept_codes(sample: Sample, name: str, keep: np.ndarray | None) -> tuple[np.ndarray, int]:
+    """Codes of ``segment.<name>`` restricted to *keep*, and the number of distinct values."""
+    column = segment_column(sample, name)
+    if column is None:
+        raise ValueError(f"the sample has no column 'segment.{name}'")
+    codes = codes_of(column, SEGMENT_PREFIX + name)
+    return (codes.codes if keep is None else codes.codes[keep]), codes.n_values
+
+
+def orders_by_value(order: np.ndarray, codes: np.ndarray, n_values: int) -> list[np.ndarray]:
+    """Per value v, ``argsort(values[rows_v])`` from ``order = argsort(values)``, no new sort.
+
+    ``rows_v`` are the rows with code v in ascending order (as in :func:`split`). Two stable
+    sorts of small integer codes (radix sorts, linear time) regroup the full order by value.
+    """
+    n = codes.size
+    small = codes.astype(np.int32 if n_values > 32_000 else np.int16)
+    counts = np.bincount(small, minlength=n_values)
+    starts = np.cumsum(counts) - counts
+    rows_by_value = np.argsort(small, kind="stable")
+    local = np.empty(n, dtype=np.int64)
+    local[rows_by_value] = np.arange(n, dtype=np.int64) - np.repeat(starts, counts)
+    grouped = order[np.argsort(small[order], kind="stable")]
+    return [local[grouped[starts[v] : starts[v] + counts[v]]] for v in range(n_values)]
