@@ -32,6 +32,22 @@ KNOWN_COLUMNS = NUMERIC_COLUMNS + TEXT_COLUMNS
 SEGMENT_PREFIX = "segment."
 
 
+def json_safe(value: Any) -> Any:
+    """*value* with numpy scalars made plain and non-finite floats made None (strict JSON)."""
+    if isinstance(value, Mapping):
+        return {str(k): json_safe(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple, np.ndarray)):
+        return [json_safe(v) for v in value]
+    if isinstance(value, (bool, np.bool_)):
+        return bool(value)
+    if isinstance(value, (int, np.integer)):
+        return int(value)
+    if isinstance(value, (float, np.floating)):
+        number = float(value)
+        return number if math.isfinite(number) else None
+    return value
+
+
 @dataclass(frozen=True)
 class Sample:
     """A columnar sample: one array per column, all of one length.
@@ -220,7 +236,7 @@ class Finding:
             "blocking": self.blocking,
             "against": self.against,
             "message": self.message,
-            "details": dict(self.details),
+            "details": json_safe(self.details),
         }
 
     @classmethod

@@ -108,6 +108,13 @@ def skipped(config: CheckConfig, message: str, *, statistic: str | None = None) 
     )
 
 
+def format_p(pvalue: float | None) -> str:
+    """A p-value for a sentence: ``p = 0.0032``, or ``p < 1e-16`` below double precision."""
+    if pvalue is None:
+        return ""
+    return "p < 1e-16" if pvalue < 1e-16 else f"p = {pvalue:.3g}"
+
+
 def over_limit(value: float, limit: float | None) -> bool:
     """True when *value* exceeds *limit* (no limit: never)."""
     return limit is not None and value > limit

@@ -22,7 +22,7 @@ from typing import Any, Literal
 import numpy as np
 from pydantic import Field, field_validator, model_validator
 
-from service.gate.checks.base import CheckContext, register, skipped
+from service.gate.checks.base import CheckContext, format_p, register, skipped
 from service.gate.checks.segments import CorrectedSegmentKeys, Unit, matching_rows, split
 from service.gate.types import Finding, Sample
 from service.stats import distance
@@ -216,7 +216,7 @@ def run_drift(config: DriftConfig, ctx: CheckContext) -> list[Finding]:
         })
     unit, base, cand, whole = results[0]
     label = whole.label or config.statistic
-    ptext = "" if whole.pvalue is None else f", p = {whole.pvalue:.3g}"
+    ptext = "" if whole.pvalue is None else f", {format_p(whole.pvalue)}"
     limit_text = _limit_text(config)
     head = f"score {label} {whole.value:.3g} vs {config.against}{ptext}"
     if over_units:

@@ -1,0 +1,1 @@
+"""HTTP only: routers, request/response schemas, dependencies and the error handler."""

@@ -1,0 +1,100 @@
+"""One place that turns errors into the JSON error shape. No input may produce a 500 with an
+HTML page or a non-JSON body; validation errors never echo the offending input (it may hold
+NaN, which strict JSON cannot carry)."""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Sequence
+from typing import Any
+
+from fastapi import FastAPI, Request
+from fastapi.exceptions import RequestValidationError
+from fastapi.responses import JSONResponse
+from starlette.exceptions import HTTPException as StarletteHTTPException
+
+from service.errors import TidegateError
+
+log = logging.getLogger("tidegate.api")
+
+_HTTP_CODES = {
+    400: "bad_request",
+    401: "unauthorized",
+    403: "forbidden",
+    404: "not_found",
+    405: "method_not_allowed",
+    406: "not_acceptable",
+    409: "conflict",
+    413: "payload_too_large",
+    415: "unsupported_media_type",
+    422: "invalid_request",
+    429: "too_many_requests",
+}
+
+
+def field_path(loc: Sequence[Any]) -> str:
+    """``("body", "sample", "score", 3)`` -> ``sample.score[3]``."""
+    parts = list(loc)
+    if parts and parts[0] in {"body", "query", "path", "header", "cookie"}:
+        origin = parts.pop(0)
+        if origin != "body" and parts:
+            return f"{origin}.{'.'.join(str(p) for p in parts)}"
+    out = ""
+    for part in parts:
+        if isinstance(part, int):
+            out += f"[{part}]"
+        else:
+            out += ("." if out else "") + str(part)
+    return out
+
+
+def error_response(status: int, code: str, message: str, field: str | None = None,
+                   details: list[dict[str, Any]] | None = None) -> JSONResponse:
+    return JSONResponse(
+        status_code=status,
+        content={"error": {"code": code, "message": message, "field": field,
+                           "details": details or []}},
+    )
+
+
+async def _tidegate_error(_request: Request, exc: Exception) -> JSONResponse:
+    assert isinstance(exc, TidegateError)
+    return JSONResponse(status_code=exc.status, content=exc.body())
+
+
+async def _validation_error(_request: Request, exc: Exception) -> JSONResponse:
+    assert isinstance(exc, RequestValidationError)
+    details = []
+    for err in exc.errors()[:50]:
+        kind = str(err.get("type", ""))
+        message = str(err.get("msg", "invalid value"))
+        if kind == "extra_forbidden":
+            message = "unknown field"
+        if kind == "json_invalid":
+            message = "body is not valid JSON: " + str(err.get("ctx", {}).get("error", ""))
+        details.append({"field": field_path(err.get("loc", ())), "message": message, "type": kind})
+    first = details[0] if details else {"field": None, "message": "invalid request"}
+    code = "invalid_json" if first.get("type") == "json_invalid" else "invalid_request"
+    return error_response(422, code, f"{first['field'] or 'request'}: {first['message']}",
+                          first["field"], details)
+
+
+async def _http_error(_request: Request, exc: Exception) -> JSONResponse:
+    assert isinstance(exc, StarletteHTTPException)
+    code = _HTTP_CODES.get(exc.status_code, "http_error")
+    response = error_response(exc.status_code, code, str(exc.detail))
+    if exc.headers:
+        response.headers.update(exc.headers)
+    return response
+
+
+async def _unexpected(_request: Request, exc: Exception) -> JSONResponse:
+    log.exception("unhandled error", exc_info=exc)
+    return error_response(500, "internal", "internal error; see the service log")
+
+
+def install_error_handlers(app: FastAPI) -> None:
+    app.add_exception_handler(TidegateError, _tidegate_error)
+    app.add_exception_handler(RequestValidationError, _validation_error)
+    app.add_exception_handler(StarletteHTTPException, _http_error)
+    app.add_exception_handler(Exception, _unexpected)

@@ -1,0 +1,99 @@
+"""Models: the list with baselines and last verdicts; one model; setting the baseline."""
+
+from __future__ import annotations
+
+from datetime import datetime
+from typing import Annotated, Literal
+
+from fastapi import APIRouter, Query
+
+from service import intake, views
+from service.api.deps import ClockDep, DbDep, PrincipalDep
+from service.api.routers.snapshots import ERRORS, ModelPath
+from service.api.schemas import BaselinePublic, BaselineSet, ModelList, ModelPublic, VerdictList
+from service.errors import InvalidInput, NotFound
+from service.store import repo
+
+router = APIRouter(prefix="/v1/models", tags=["models"])
+
+
+@router.get("", response_model=ModelList, summary="Every model with its baseline and last verdict")
+def list_models(db: DbDep, clock: ClockDep) -> dict[str, object]:
+    now = clock()
+    with db.transaction() as session:
+        data = [views.model_view(session, model=m, now=now) for m in repo.list_model_rows(session)]
+    return {"data": data, "count": len(data)}
+
+
+@router.get("/{model}", response_model=ModelPublic, responses=ERRORS, summary="One model")
+def get_model(db: DbDep, clock: ClockDep, model: str = ModelPath) -> dict[str, object]:
+    with db.transaction() as session:
+        row = repo.get_model(session, name=model)
+        if row is None:
+            raise NotFound(f"no model {model!r}", field="model")
+        return views.model_view(session, model=row, now=clock())
+
+
+@router.get(
+    "/{model}/verdicts",
+    response_model=VerdictList,
+    responses=ERRORS,
+    summary="A model's verdicts, newest first, with filters and cursor pagination",
+)
+def list_verdicts(
+    db: DbDep,
+    model: str = ModelPath,
+    decision: Annotated[Literal["promote", "hold"] | None, Query()] = None,
+    since: Annotated[datetime | None, Query(description="Created at or after (ISO 8601).")] = None,
+    until: Annotated[datetime | None, Query(description="Created before (ISO 8601).")] = None,
+    limit: Annotated[int, Query(ge=1, le=500)] = 50,
+    cursor: Annotated[str | None, Query(max_length=100)] = None,
+) -> dict[str, object]:
+    before_id = None
+    if cursor is not None:
+        try:
+            before_id = repo.decode_cursor(cursor)
+        except ValueError as exc:
+            raise InvalidInput(str(exc), field="query.cursor") from None
+    for name, value in (("since", since), ("until", until)):
+        if value is not None and value.tzinfo is None:
+            raise InvalidInput("give a time zone (e.g. 2026-12-01T02:45:00Z)", field=f"query.{name}")
+    with db.transaction() as session:
+        row = repo.get_model(session, name=model)
+        if row is None:
+            raise NotFound(f"no model {model!r}", field="model")
+        rows, next_id = repo.list_verdicts(
+            session, model_id=row.id, decision=decision, since=since, until=until, limit=limit,
+            before_id=before_id,
+        )
+        overrides = repo.overrides_for(session, verdict_ids=[v.id for v, _ in rows])
+        data = [views.verdict_summary(v, s, overrides[v.id], model) for v, s in rows]
+    return {
+        "data": data,
+        "count": len(data),
+        "next_cursor": repo.encode_cursor(next_id) if next_id is not None else None,
+    }
+
+
+@router.put(
+    "/{model}/baseline",
+    response_model=BaselinePublic,
+    responses=ERRORS,
+    summary="Set the baseline by hand: promote a snapshot or roll back to an earlier one",
+)
+def set_baseline(
+    body: BaselineSet, db: DbDep, clock: ClockDep, principal: PrincipalDep,
+    model: str = ModelPath,
+) -> dict[str, object]:
+    with db.transaction() as session:
+        _, snapshot, previous = intake.set_baseline_by_hand(
+            session, model_name=model, key=body.snapshot, reason=body.reason,
+            actor=principal.name, now=clock(),
+        )
+        cause = repo.promotions(session, model_id=snapshot.model_id, limit=1)[0].cause
+    return {
+        "model": model,
+        "baseline": snapshot.key,
+        "previous": previous.key if previous else None,
+        "cause": cause,
+    }

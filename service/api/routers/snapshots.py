@@ -1,0 +1,100 @@
+"""POST a snapshot (returns the verdict); GET one snapshot by key."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import re
+
+from fastapi import APIRouter, Path, Response
+
+from service import intake, views
+from service.api.deps import ClockDep, DbDep, PoliciesDep, PrincipalDep, SettingsDep
+from service.api.sample import to_sample
+from service.api.schemas import ErrorResponse, SnapshotCreate, SnapshotPublic, VerdictPublic
+from service.errors import InvalidInput, NotFound
+from service.store import repo
+
+router = APIRouter(prefix="/v1/models/{model}/snapshots", tags=["snapshots"])
+
+MODEL_NAME = r"^[A-Za-z0-9][A-Za-z0-9._-]{0,99}$"
+ModelPath = Path(description="Model name: letters, digits, . _ - (at most 100).", max_length=100)
+ERRORS = {
+    404: {"model": ErrorResponse},
+    409: {"model": ErrorResponse},
+    413: {"model": ErrorResponse},
+    422: {"model": ErrorResponse},
+}
+
+
+def check_model_name(model: str) -> str:
+    if not re.match(MODEL_NAME, model):
+        raise InvalidInput(
+            "model names are letters, digits, '.', '_' and '-', starting with a letter or digit",
+            field="model",
+        )
+    return model
+
+
+def content_digest(body: SnapshotCreate) -> str:
+    canonical = json.dumps(body.model_dump(), sort_keys=True, default=str, allow_nan=True)
+    return "sha256:" + hashlib.sha256(canonical.encode("utf-8")).hexdigest()
+
+
+@router.post(
+    "",
+    response_model=VerdictPublic,
+    status_code=201,
+    responses={200: {"model": VerdictPublic, "description": "Retry of a stored snapshot"},
+               **ERRORS},
+    summary="Post a snapshot; the response is its verdict",
+)
+def post_snapshot(
+    body: SnapshotCreate,
+    response: Response,
+    db: DbDep,
+    settings: SettingsDep,
+    policies: PoliciesDep,
+    clock: ClockDep,
+    principal: PrincipalDep,
+    model: str = ModelPath,
+) -> dict[str, object]:
+    check_model_name(model)
+    sample = to_sample(body.sample, settings) if body.sample is not None else None
+    post = intake.SnapshotPost(
+        key=body.key,
+        content_digest=content_digest(body),
+        parent=body.parent,
+        trained_until=body.trained_until,
+        code_version=body.code_version,
+        rows_trained=body.rows_trained,
+        metrics=dict(body.metrics),
+        tags=dict(body.tags),
+        sample=sample,
+    )
+    with db.transaction() as session:
+        result = intake.submit(
+            session,
+            model_name=model,
+            post=post,
+            policies=policies,
+            now=clock(),
+            history_limit=settings.history_limit,
+            actor=principal.name,
+        )
+        detail = views.verdict_detail(session, verdict=result.verdict)
+    response.status_code = 201 if result.created else 200
+    return detail
+
+
+@router.get("/{key}", response_model=SnapshotPublic, responses=ERRORS,
+            summary="One snapshot by its key")
+def get_snapshot(db: DbDep, key: str, model: str = ModelPath) -> dict[str, object]:
+    with db.transaction() as session:
+        model_row = repo.get_model(session, name=model)
+        if model_row is None:
+            raise NotFound(f"no model {model!r}", field="model")
+        snapshot = repo.get_snapshot(session, model_id=model_row.id, key=key)
+        if snapshot is None:
+            raise NotFound(f"model {model!r} has no snapshot {key!r}", field="key")
+        return views.snapshot_view(session, model=model_row, snapshot=snapshot)

@@ -1,0 +1,211 @@
+"""Request and response schemas, one per purpose. Never ORM classes."""
+
+from __future__ import annotations
+
+from datetime import datetime
+from typing import Annotated, Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, StringConstraints
+
+Key = Annotated[
+    str, StringConstraints(min_length=1, max_length=200, pattern=r"^[^/\\\x00-\x1f\x7f]+$")
+]
+ShortText = Annotated[str, StringConstraints(max_length=200)]
+FiniteFloat = Annotated[float, Field(allow_inf_nan=False)]
+TextValue = str | int
+
+
+class SampleIn(BaseModel):
+    """The sample, columnar: one array per column, all of one length. Besides the columns
+    below, any number of ``segment.<name>`` columns of text (or integer) values."""
+
+    model_config = ConfigDict(
+        extra="allow",
+        json_schema_extra={
+            "additionalProperties": {"type": "array", "items": {"type": ["string", "integer"]}}
+        },
+    )
+
+    score: list[float | None] = Field(
+        description="The candidate's scores; null, NaN and Infinity are kept and judged."
+    )
+    label: list[FiniteFloat] | None = Field(None, description="Outcome: 0/1 or graded relevance.")
+    baseline_score: list[float | None] | None = Field(
+        None, description="The baseline's scores on the same rows."
+    )
+    served_score: list[float | None] | None = Field(
+        None, description="The score serving logged for the same rows."
+    )
+    row_id: list[TextValue] | None = Field(None, description="Row identifiers (unique).")
+    group: list[TextValue] | None = Field(None, description="Query / request / user of the row.")
+    item: list[TextValue] | None = Field(None, description="Recommended item of the row.")
+    rank: list[int] | None = Field(None, description="Position of the item in its group's list.")
+
+
+class SnapshotCreate(BaseModel):
+    """One snapshot posted by the retraining job."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    key: Key = Field(description="The trainer's own key for this snapshot, unique per model.")
+    parent: Key | None = Field(None, description="Key of the snapshot this one was trained from.")
+    trained_until: datetime | None = Field(
+        None, description="Watermark: the newest interaction the snapshot was trained on."
+    )
+    code_version: ShortText | None = Field(None, description="Version of the training code.")
+    rows_trained: int | None = Field(None, ge=0, description="Rows trained on in this step.")
+    tags: dict[ShortText, ShortText] = Field(default_factory=dict, description="Free labels.")
+    metrics: dict[ShortText, FiniteFloat] = Field(
+        default_factory=dict, description="Metrics the trainer computed itself."
+    )
+    sample: SampleIn | None = Field(None, description="Scored rows (see SampleIn).")
+
+
+class FindingPublic(BaseModel):
+    check: str
+    kind: str
+    outcome: Literal["ok", "breach", "advisory", "inconclusive", "skipped"]
+    statistic: str | None = None
+    value: float | None = None
+    limit: float | None = None
+    pvalue: float | None = None
+    baseline_value: float | None = None
+    candidate_value: float | None = None
+    interval: list[float] | None = None
+    blocking: bool = True
+    against: str | None = None
+    message: str
+    details: dict[str, Any] = Field(default_factory=dict)
+
+
+class OverridePublic(BaseModel):
+    id: int
+    decision: Literal["promote", "hold"]
+    reason: str
+    actor: str
+    created_at: str
+
+
+class VerdictSummary(BaseModel):
+    verdict_id: int
+    model: str
+    snapshot: str
+    decision: Literal["promote", "hold"]
+    effective_decision: Literal["promote", "hold"]
+    overridden: bool
+    reasons: list[str]
+    moved_baseline: bool
+    created_at: str
+    trained_until: str | None = None
+
+
+class VerdictPublic(VerdictSummary):
+    baseline: str | None = None
+    reference: str | None = None
+    policy: str | None = None
+    policy_digest: str | None = None
+    error: str | None = None
+    duration_ms: float
+    findings: list[FindingPublic]
+    overrides: list[OverridePublic]
+    previous_verdict_id: int | None = None
+    next_verdict_id: int | None = None
+
+
+class VerdictList(BaseModel):
+    data: list[VerdictSummary]
+    count: int
+    next_cursor: str | None = None
+
+
+class ModelPublic(BaseModel):
+    name: str
+    baseline: str | None = None
+    baseline_since: str | None = None
+    baseline_age_seconds: float | None = None
+    reference: str | None = None
+    last_verdict: VerdictSummary | None = None
+    holds_24h: int
+    consecutive_holds: int
+    created_at: str
+
+
+class ModelList(BaseModel):
+    data: list[ModelPublic]
+    count: int
+
+
+class SnapshotPublic(BaseModel):
+    model: str
+    key: str
+    parent: str | None = None
+    trained_until: str | None = None
+    code_version: str | None = None
+    rows_trained: int | None = None
+    metrics: dict[str, float]
+    tags: dict[str, str]
+    sample_rows: int
+    columns: list[str]
+    summary: dict[str, Any] | None = None
+    sample_pruned_at: str | None = None
+    created_at: str
+    verdict_id: int | None = None
+    is_baseline: bool
+
+
+class BaselineSet(BaseModel):
+    """Make a stored snapshot the baseline: promote by hand, or roll back."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    snapshot: Key = Field(description="Key of the snapshot to serve.")
+    reason: Annotated[str, StringConstraints(min_length=1, max_length=2000)] = Field(
+        description="Why (kept in the audit log)."
+    )
+
+
+class BaselinePublic(BaseModel):
+    model: str
+    baseline: str
+    previous: str | None = None
+    cause: str
+
+
+class PolicyCheckPublic(BaseModel):
+    name: str
+    kind: str
+    blocking: bool
+    against: str
+
+
+class PolicyPublic(BaseModel):
+    name: str
+    path: str
+    digest: str
+    models: list[str]
+    description: str
+    first_snapshot: str
+    on_inconclusive: str
+    checks: list[PolicyCheckPublic]
+    text: str
+
+
+class PolicyList(BaseModel):
+    data: list[PolicyPublic]
+    count: int
+
+
+class ErrorBody(BaseModel):
+    code: str
+    message: str
+    field: str | None = None
+    details: list[dict[str, Any]] = Field(default_factory=list)
+
+
+class ErrorResponse(BaseModel):
+    error: ErrorBody
+
+
+class Health(BaseModel):
+    status: Literal["ok", "not_ready"]
+    detail: dict[str, Any] = Field(default_factory=dict)

@@ -1,0 +1,57 @@
+"""create_app(settings): wires routers, the store and the policies. Nothing touches a database
+at import time; each test builds its own app on its own temporary database."""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Callable, Sequence
+from datetime import UTC, datetime
+
+from fastapi import FastAPI
+
+from service import __version__
+from service.api.deps import Database
+from service.api.errors import install_error_handlers
+from service.api.routers import health, models, snapshots, verdicts
+from service.api.routers import policies as policy_routes
+from service.gate.policy import Policy, load_policies
+from service.settings import Settings
+from service.store import db as store_db
+
+log = logging.getLogger("tidegate")
+
+
+def utc_now() -> datetime:
+    return datetime.now(UTC)
+
+
+def create_app(
+    settings: Settings | None = None,
+    *,
+    policies: Sequence[Policy] | None = None,
+    clock: Callable[[], datetime] = utc_now,
+    check_database: bool = True,
+) -> FastAPI:
+    """Build the service. Raises DatabaseNotReady when the database is not at the current
+    revision (unless ``settings.migrate_on_start``), PolicyError for a bad policy file."""
+    settings = settings or Settings()
+    engine = store_db.make_engine(settings)
+    if check_database:
+        store_db.ensure_ready(settings, engine)
+        log.info("storage settings: %s", store_db.storage_settings(engine))
+    loaded = list(policies) if policies is not None else load_policies(settings.policy_dir)
+    app = FastAPI(
+        title="tidegate",
+        version=__version__,
+        description="A release gate for incrementally retrained ranking and recommendation "
+        "models: post a snapshot, get promote or hold with reasons and evidence.",
+    )
+    app.state.settings = settings
+    app.state.engine = engine
+    app.state.database = Database(store_db.make_sessionmaker(engine))
+    app.state.policies = loaded
+    app.state.clock = clock
+    install_error_handlers(app)
+    for module in (snapshots, models, verdicts, policy_routes, health):
+        app.include_router(module.router)
+    return app

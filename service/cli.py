@@ -1,0 +1,325 @@
+"""The ``tidegate`` command.
+
+Exit codes of ``tidegate submit`` (for the retraining job): 0 promote, 3 hold, 4 error
+(rejected post, service unreachable, bad file). Other commands: 0 on success, 4 on error,
+2 on a usage error.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import logging
+import sys
+from collections.abc import Sequence
+from datetime import UTC, datetime, timedelta
+from pathlib import Path
+from typing import Any
+
+EXIT_OK = 0
+EXIT_HOLD = 3
+EXIT_ERROR = 4
+
+
+def _client(args: argparse.Namespace) -> Any:
+    from service.client import TidegateClient
+
+    return TidegateClient(args.url, token=args.token)
+
+
+def _print_json(data: Any) -> None:
+    print(json.dumps(data, indent=2, sort_keys=False))
+
+
+# --- service and database -------------------------------------------------------------------
+
+
+def cmd_serve(args: argparse.Namespace) -> int:
+    import uvicorn
+
+    from service.app import create_app
+    from service.settings import Settings
+
+    overrides: dict[str, Any] = {}
+    if args.open:
+        overrides["auth"] = "open"
+    settings = Settings(**overrides)
+    if settings.auth == "open":
+        print(
+            "WARNING: tidegate runs in OPEN mode: no API tokens are checked. Use it for the demo "
+            "and local development only.",
+            file=sys.stderr,
+        )
+    app = create_app(settings)
+    uvicorn.run(app, host=args.host, port=args.port, log_level=settings.log_level.lower())
+    return EXIT_OK
+
+
+def cmd_db(args: argparse.Namespace) -> int:
+    from service.settings import Settings
+    from service.store import db
+
+    settings = Settings()
+    if args.action == "upgrade":
+        db.upgrade(settings, args.revision or "head")
+    elif args.action == "downgrade":
+        if not args.revision:
+            print("downgrade needs a revision (e.g. base)", file=sys.stderr)
+            return EXIT_ERROR
+        db.downgrade(settings, args.revision)
+    engine = db.make_engine(settings)
+    print(f"database: {engine.url.render_as_string(hide_password=True)}")
+    print(f"revision: {db.current_revision(engine) or 'none'} (head {db.head_revision(settings)})")
+    print(f"storage:  {db.storage_settings(engine)}")
+    return EXIT_OK
+
+
+def cmd_policy_check(args: argparse.Namespace) -> int:
+    from service.gate.policy import PolicyError, load_policies
+    from service.settings import Settings
+
+    folder = Path(args.folder) if args.folder else Settings().policy_dir
+    try:
+        policies = load_policies(folder)
+    except PolicyError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_ERROR
+    for p in policies:
+        print(f"{p.name}: models {', '.join(p.models)}; {len(p.checks)} checks; {p.digest}")
+    return EXIT_OK
+
+
+# --- the retraining job ---------------------------------------------------------------------
+
+
+def cmd_submit(args: argparse.Namespace) -> int:
+    from service.client import ClientError
+    from service.explain import explain
+
+    try:
+        text = sys.stdin.read() if args.file == "-" else Path(args.file).read_text("utf-8")
+        body = json.loads(text)
+        if not isinstance(body, dict):
+            raise ValueError("the file must hold one JSON object")
+    except (OSError, ValueError) as exc:
+        print(f"error: cannot read {args.file}: {exc}", file=sys.stderr)
+        return EXIT_ERROR
+    model = args.model or body.pop("model", None)
+    body.pop("model", None)
+    if not model:
+        print("error: give --model or a \"model\" field in the file", file=sys.stderr)
+        return EXIT_ERROR
+    try:
+        with _client(args) as client:
+            verdict = client.post_snapshot(model, body)
+    except ClientError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_ERROR
+    if args.json:
+        _print_json(verdict)
+    else:
+        print(explain(verdict))
+    return EXIT_OK if verdict["decision"] == "promote" else EXIT_HOLD
+
+
+# --- on-call --------------------------------------------------------------------------------
+
+
+def _find_verdict(client: Any, model: str, snapshot: str | None) -> dict[str, Any]:
+    if snapshot is None:
+        return client.latest_verdict(model)  # type: ignore[no-any-return]
+    snap = client.snapshot(model, snapshot)
+    if snap.get("verdict_id") is None:
+        from service.client import ClientError
+
+        raise ClientError(404, "not_found", f"snapshot {snapshot!r} has no verdict")
+    return client.verdict(snap["verdict_id"])  # type: ignore[no-any-return]
+
+
+def cmd_why(args: argparse.Namespace) -> int:
+    from service.client import ClientError
+    from service.explain import explain
+
+    try:
+        with _client(args) as client:
+            verdict = _find_verdict(client, args.model, args.snapshot)
+    except ClientError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_ERROR
+    if args.json:
+        _print_json(verdict)
+    else:
+        print(explain(verdict))
+    return EXIT_OK
+
+
+def cmd_history(args: argparse.Namespace) -> int:
+    from service.client import ClientError
+
+    try:
+        with _client(args) as client:
+            page = client.verdicts(args.model, limit=args.limit, decision=args.decision)
+    except ClientError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_ERROR
+    if args.json:
+        _print_json(page)
+        return EXIT_OK
+    for v in page["data"]:
+        flag = " (overridden to " + v["effective_decision"] + ")" if v["overridden"] else ""
+        reason = v["reasons"][0] if v["reasons"] else ""
+        print(f"{v['verdict_id']:>6}  {v['created_at']}  {v['snapshot']:<24} "
+              f"{v['decision']:<8}{flag} {reason}")
+    return EXIT_OK
+
+
+def cmd_baseline_set(args: argparse.Namespace) -> int:
+    from service.client import ClientError
+
+    try:
+        with _client(args) as client:
+            result = client.set_baseline(args.model, args.snapshot, args.reason)
+    except ClientError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_ERROR
+    print(f"{result['model']}: baseline is now {result['baseline']} "
+          f"(was {result['previous'] or 'none'}; {result['cause']})")
+    return EXIT_OK
+
+
+# --- demo -----------------------------------------------------------------------------------
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    from fastapi.testclient import TestClient
+
+    from service import demo
+    from service.app import create_app
+    from service.settings import Settings
+    from service.store import db
+
+    path = Path(args.db)
+    for suffix in ("", "-wal", "-shm"):
+        Path(str(path) + suffix).unlink(missing_ok=True)
+    settings = Settings(
+        database_url=f"sqlite:///{path}", auth="open", policy_dir=Path(args.policies)
+    )
+    db.upgrade(settings)
+    end = datetime.now(UTC).replace(second=0, microsecond=0)
+    end -= timedelta(minutes=end.minute % 15)
+    events = demo.scenario(end, hours=args.hours)
+    clock = {"now": end}
+    app = create_app(settings, clock=lambda: clock["now"])
+    print(f"loading the Bramble & Page demo: {len(events)} snapshots into {path} ...")
+    with TestClient(app) as http:
+
+        def post(event: demo.DemoEvent) -> dict[str, Any]:
+            clock["now"] = event.at + timedelta(seconds=40)
+            response = http.post(f"/v1/models/{event.model}/snapshots", json=event.body)
+            if response.status_code >= 300:
+                raise RuntimeError(f"demo post failed: {response.status_code} {response.text}")
+            return response.json()  # type: ignore[no-any-return]
+
+        counts = demo.load(post, events)
+    print(f"demo loaded: {counts['promote']} promoted, {counts['hold']} held")
+    if args.no_serve:
+        return EXIT_OK
+    import uvicorn
+
+    print(
+        "WARNING: the demo runs in OPEN mode: no API tokens are checked.\n"
+        f"tidegate demo on http://{args.host}:{args.port}/  (API docs at /docs; Ctrl-C stops)",
+        file=sys.stderr,
+    )
+    uvicorn.run(create_app(settings), host=args.host, port=args.port, log_level="warning")
+    return EXIT_OK
+
+
+# --- wiring ---------------------------------------------------------------------------------
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(prog="tidegate", description=__doc__.splitlines()[0])
+    sub = parser.add_subparsers(dest="command", required=True)
+
+    def remote(p: argparse.ArgumentParser) -> None:
+        p.add_argument("--url", default=None, help="service URL (env TIDEGATE_URL; "
+                       "default http://127.0.0.1:8080)")
+        p.add_argument("--token", default=None, help="API token (env TIDEGATE_TOKEN)")
+        p.add_argument("--json", action="store_true", help="print JSON instead of text")
+
+    p = sub.add_parser("serve", help="run the HTTP service")
+    p.add_argument("--host", default="127.0.0.1")
+    p.add_argument("--port", type=int, default=8080)
+    p.add_argument("--open", action="store_true", help="open mode: no tokens (local use only)")
+    p.set_defaults(func=cmd_serve)
+
+    p = sub.add_parser("db", help="database migrations: upgrade, downgrade, current")
+    p.add_argument("action", choices=["upgrade", "downgrade", "current"])
+    p.add_argument("revision", nargs="?", default=None)
+    p.set_defaults(func=cmd_db)
+
+    p = sub.add_parser("policy", help="policies: check the policy folder")
+    p.add_argument("action", choices=["check"])
+    p.add_argument("folder", nargs="?", default=None)
+    p.set_defaults(func=cmd_policy_check)
+
+    p = sub.add_parser("submit", help="post a snapshot from a JSON file; exit 0 promote, "
+                       "3 hold, 4 error")
+    p.add_argument("file", help="JSON file with the snapshot (- for standard input)")
+    p.add_argument("--model", default=None)
+    remote(p)
+    p.set_defaults(func=cmd_submit)
+
+    p = sub.add_parser("why", help="explain the latest (or a given) verdict of a model")
+    p.add_argument("model")
+    p.add_argument("snapshot", nargs="?", default=None)
+    remote(p)
+    p.set_defaults(func=cmd_why)
+
+    p = sub.add_parser("history", help="a model's verdicts, newest first")
+    p.add_argument("model")
+    p.add_argument("--limit", type=int, default=20)
+    p.add_argument("--decision", choices=["promote", "hold"], default=None)
+    remote(p)
+    p.set_defaults(func=cmd_history)
+
+    p = sub.add_parser("baseline", help="set the baseline by hand (promote or roll back)")
+    bsub = p.add_subparsers(dest="baseline_action", required=True)
+    b = bsub.add_parser("set", help="make SNAPSHOT the baseline of MODEL")
+    b.add_argument("model")
+    b.add_argument("snapshot")
+    b.add_argument("--reason", required=True)
+    remote(b)
+    b.set_defaults(func=cmd_baseline_set)
+
+    p = sub.add_parser("demo", help="load the invented bookshop scenario and serve it")
+    p.add_argument("--db", default="tidegate-demo.db", help="SQLite file (recreated)")
+    p.add_argument("--policies", default="config/policies")
+    p.add_argument("--hours", type=int, default=36)
+    p.add_argument("--host", default="127.0.0.1")
+    p.add_argument("--port", type=int, default=8080)
+    p.add_argument("--no-serve", action="store_true", help="load the data, then exit")
+    p.set_defaults(func=cmd_demo)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    logging.basicConfig(level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s %(message)s")
+    args = build_parser().parse_args(argv)
+    try:
+        return int(args.func(args))
+    except KeyboardInterrupt:
+        return EXIT_OK
+    except Exception as exc:  # a clear message, not a traceback, for operator errors
+        from service.gate.policy import PolicyError
+        from service.store.db import DatabaseNotReady
+
+        if isinstance(exc, (PolicyError, DatabaseNotReady)):
+            print(f"error: {exc}", file=sys.stderr)
+            return EXIT_ERROR
+        raise
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,209 @@
+"""The demo scenario (invented, seeded): "Bramble & Page", an online bookshop.
+
+``shelf-ranker`` scores books for the home shelf and retrains every 15 minutes; ``also-read``
+recommends books after a purchase and retrains hourly. Segments: ``reader_tenure`` (new /
+returning) and ``device`` (app / web). Over the demo period a few bad pushes happen:
+
+=============  ===========================================================================
+shelf-ranker   a broken feature join collapses the output; a calibration blow-up shifts every
+               score up; a push with NaN scores; a replayed job with a stale watermark
+also-read      a push whose reported recall@10 drops sharply
+=============  ===========================================================================
+
+Everything is generated from fixed seeds; only the timestamps follow the clock (the scenario
+ends at the time the demo starts, so ages on the pages look natural).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass
+from datetime import datetime, timedelta
+from typing import Any
+
+import numpy as np
+from scipy import stats as sps
+
+SEED = 20261201
+
+
+@dataclass
+class DemoEvent:
+    model: str
+    at: datetime
+    body: dict[str, Any]
+    note: str = ""
+
+
+def _auc(labels: np.ndarray, scores: np.ndarray) -> float:
+    """AUC by the Mann–Whitney U statistic (ties averaged)."""
+    pos = scores[labels == 1]
+    neg = scores[labels == 0]
+    u = sps.mannwhitneyu(pos, neg, alternative="two-sided").statistic
+    return float(u / (pos.size * neg.size))
+
+
+def _logloss(labels: np.ndarray, scores: np.ndarray) -> float:
+    p = np.clip(scores, 1e-7, 1 - 1e-7)
+    return float(-np.mean(labels * np.log(p) + (1 - labels) * np.log(1 - p)))
+
+
+def _logit(p: np.ndarray) -> np.ndarray:
+    p = np.clip(p, 1e-6, 1 - 1e-6)
+    return np.log(p / (1 - p))
+
+
+def _sigmoid(x: np.ndarray) -> np.ndarray:
+    return 1.0 / (1.0 + np.exp(-x))
+
+
+class World:
+    """Readers' true click propensities, and how a snapshot of a model scores them."""
+
+    def __init__(self, rng: np.random.Generator, rows: int) -> None:
+        self.rng = rng
+        self.rows = rows
+        self._holdout = self._draw()
+
+    def holdout(self) -> dict[str, np.ndarray]:
+        """The trainer's holdout: the same rows for every snapshot of a day (so quality
+        differences are the model's, not the rows')."""
+        return self._holdout
+
+    def _draw(self) -> dict[str, np.ndarray]:
+        rng = self.rng
+        n = self.rows
+        tenure = np.where(rng.random(n) < 0.3, "new", "returning")
+        device = np.where(rng.random(n) < 0.6, "app", "web")
+        base = rng.normal(-1.2, 1.0, n) + np.where(tenure == "returning", 0.4, 0.0)
+        true_p = _sigmoid(base)
+        label = (rng.random(n) < true_p).astype(int)
+        return {"tenure": tenure, "device": device, "truth": base, "label": label}
+
+    def score(self, truth: np.ndarray, *, skill: float, bias: float, noise_seed: int) -> np.ndarray:
+        noise = np.random.default_rng(noise_seed).normal(0.0, 1.0, truth.size)
+        return _sigmoid(skill * truth + (1 - skill) * noise + bias)
+
+
+def _body(
+    key: str,
+    parent: str | None,
+    trained_until: datetime,
+    rows_trained: int,
+    holdout: dict[str, np.ndarray],
+    scores: np.ndarray,
+    baseline_scores: np.ndarray | None,
+    extra_metrics: dict[str, float] | None = None,
+) -> dict[str, Any]:
+    label = holdout["label"]
+    finite = np.isfinite(scores)
+    metrics = {
+        "auc": round(_auc(label[finite], scores[finite]), 5),
+        "logloss": round(_logloss(label[finite], scores[finite]), 5),
+    }
+    metrics.update(extra_metrics or {})
+    sample: dict[str, Any] = {
+        "score": [None if not np.isfinite(s) else round(float(s), 6) for s in scores],
+        "label": label.tolist(),
+        "segment.reader_tenure": holdout["tenure"].tolist(),
+        "segment.device": holdout["device"].tolist(),
+    }
+    if baseline_scores is not None:
+        sample["baseline_score"] = [round(float(s), 6) for s in baseline_scores]
+    return {
+        "key": key,
+        "parent": parent,
+        "trained_until": trained_until.isoformat().replace("+00:00", "Z"),
+        "code_version": "b7e41d2",
+        "rows_trained": rows_trained,
+        "metrics": metrics,
+        "tags": {"trainer": "bramble-trainer"},
+        "sample": sample,
+    }
+
+
+def shelf_ranker(end: datetime, *, hours: int = 36, rows: int = 3000) -> Iterator[DemoEvent]:
+    """The home-shelf ranker: one snapshot every 15 minutes for *hours* hours up to *end*."""
+    rng = np.random.default_rng(SEED)
+    world = World(rng, rows)
+    steps = hours * 4
+    start = end - timedelta(minutes=15 * steps)
+    bad = {
+        steps // 4: "collapse",
+        steps // 2: "calibration",
+        (steps * 2) // 3: "nan",
+        (steps * 5) // 6: "stale",
+    }
+    serving_skill, serving_bias = 0.80, 0.0
+    parent: str | None = None
+    for step in range(steps):
+        at = start + timedelta(minutes=15 * (step + 1))
+        key = at.strftime("%Y-%m-%dT%H:%MZ")
+        watermark = at - timedelta(minutes=1)
+        holdout = world.holdout()
+        skill = serving_skill + rng.normal(0.0, 0.004)
+        bias = serving_bias + rng.normal(0.0, 0.01)
+        scores = world.score(holdout["truth"], skill=skill, bias=bias, noise_seed=SEED)
+        baseline_scores = world.score(
+            holdout["truth"], skill=serving_skill, bias=serving_bias, noise_seed=SEED
+        )
+        kind = bad.get(step, "")
+        if kind == "collapse":
+            scores = 0.31 + rng.normal(0.0, 1e-8, rows)
+        elif kind == "calibration":
+            scores = _sigmoid(_logit(scores) + 1.6)
+        elif kind == "nan":
+            scores = scores.copy()
+            scores[rng.random(rows) < 0.03] = np.nan
+        elif kind == "stale":
+            watermark = at - timedelta(hours=3)
+        rows_trained = int(rng.normal(1_800_000, 60_000))
+        body = _body(key, parent, watermark, rows_trained, holdout, scores, baseline_scores)
+        yield DemoEvent("shelf-ranker", at, body, kind)
+        if not kind:
+            serving_skill, serving_bias = skill, bias
+            parent = key
+
+
+def also_read(end: datetime, *, hours: int = 36, rows: int = 2000) -> Iterator[DemoEvent]:
+    """The after-purchase recommender: one snapshot an hour for *hours* hours up to *end*."""
+    rng = np.random.default_rng(SEED + 1)
+    world = World(rng, rows)
+    start = end - timedelta(hours=hours)
+    drop_at = hours // 2
+    parent: str | None = None
+    recall = 0.31
+    for step in range(hours):
+        at = start + timedelta(hours=step + 1)
+        key = f"ar-{at.strftime('%Y%m%d-%H%M')}"
+        holdout = world.holdout()
+        scores = world.score(holdout["truth"], skill=0.75, bias=-0.2, noise_seed=SEED + 1)
+        step_recall = recall + rng.normal(0.0, 0.002)
+        note = ""
+        if step == drop_at:
+            step_recall = recall * 0.9
+            note = "recall-drop"
+        body = _body(
+            key, parent, at - timedelta(minutes=2), int(rng.normal(420_000, 15_000)), holdout,
+            scores, None, {"recall_at_10": round(step_recall, 5)},
+        )
+        yield DemoEvent("also-read", at, body, note)
+        if not note:
+            recall = step_recall
+            parent = key
+
+
+def scenario(end: datetime, *, hours: int = 36) -> list[DemoEvent]:
+    """Every demo event of both models, in time order."""
+    events = list(shelf_ranker(end, hours=hours)) + list(also_read(end, hours=hours))
+    events.sort(key=lambda e: e.at)
+    return events
+
+
+def load(post: Callable[[DemoEvent], dict[str, Any]], events: list[DemoEvent]) -> dict[str, int]:
+    """Post every event with *post*; returns counts of decisions."""
+    counts = {"promote": 0, "hold": 0}
+    for event in events:
+        verdict = post(event)
+        counts[verdict["decision"]] += 1
+    return counts

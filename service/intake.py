@@ -1,0 +1,211 @@
+"""The flow of one post (DESIGN §3): store the snapshot and its sample, load the baseline,
+reference and history, judge (pure), store the verdict and move the baseline, in one transaction.
+
+Fail closed: if loading the comparison data or evaluating raises, the verdict is ``hold`` with
+the error as its reason and the snapshot is still stored.
+"""
+
+from __future__ import annotations
+
+import logging
+import time
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from datetime import datetime
+
+from sqlalchemy.orm import Session
+
+from service.errors import Conflict
+from service.gate.evaluate import evaluate, failed_verdict
+from service.gate.policy import Policy, select_policy
+from service.gate.types import GateInput, Sample, Snapshot
+from service.store import repo
+from service.store.tables import ModelRow, SnapshotRow, VerdictRow
+
+log = logging.getLogger("tidegate.intake")
+
+
+@dataclass(frozen=True)
+class SnapshotPost:
+    """A validated post. ``content_digest`` tells an identical retry from a conflicting one."""
+
+    key: str
+    content_digest: str
+    parent: str | None = None
+    trained_until: datetime | None = None
+    code_version: str | None = None
+    rows_trained: int | None = None
+    metrics: dict[str, float] = field(default_factory=dict)
+    tags: dict[str, str] = field(default_factory=dict)
+    sample: Sample | None = None
+
+
+@dataclass(frozen=True)
+class Submitted:
+    model: ModelRow
+    snapshot: SnapshotRow
+    verdict: VerdictRow
+    created: bool
+
+
+def resolve_reference(session: Session, *, model: ModelRow) -> SnapshotRow | None:
+    """The model's reference snapshot: the one an operator pinned, if any."""
+    return repo.snapshot_by_id(session, snapshot_id=model.reference_id)
+
+
+def submit(
+    session: Session,
+    *,
+    model_name: str,
+    post: SnapshotPost,
+    policies: Sequence[Policy],
+    now: datetime,
+    history_limit: int = 200,
+    actor: str = "trainer",
+) -> Submitted:
+    """Store *post* for *model_name*, judge it and store the verdict. Does not commit."""
+    model = repo.get_or_create_model(session, name=model_name, now=now)
+    existing = repo.get_snapshot(session, model_id=model.id, key=post.key)
+    if existing is not None:
+        if existing.content_digest == post.content_digest:
+            verdict_row = repo.verdict_for_snapshot(session, snapshot_id=existing.id)
+            if verdict_row is not None:
+                return Submitted(model, existing, verdict_row, created=False)
+        raise Conflict(
+            f"snapshot {post.key!r} of model {model_name!r} exists with other content; "
+            "use a new key for a new snapshot",
+            field="key",
+        )
+    snapshot_row = repo.add_snapshot(
+        session,
+        model_id=model.id,
+        key=post.key,
+        parent=post.parent,
+        trained_until=post.trained_until,
+        code_version=post.code_version,
+        rows_trained=post.rows_trained,
+        metrics=post.metrics,
+        tags=post.tags,
+        content_digest=post.content_digest,
+        sample=post.sample,
+        now=now,
+    )
+    policy = select_policy(policies, model_name)
+    baseline_row = repo.snapshot_by_id(session, snapshot_id=model.baseline_id)
+    reference_row: SnapshotRow | None = None
+    started = time.perf_counter()
+    try:
+        reference_row = resolve_reference(session, model=model)
+        candidate = Snapshot(
+            model=model_name,
+            key=post.key,
+            parent=post.parent,
+            trained_until=post.trained_until,
+            code_version=post.code_version,
+            rows_trained=post.rows_trained,
+            metrics=post.metrics,
+            tags=post.tags,
+            sample=post.sample,
+            created_at=now,
+        )
+        baseline = (
+            repo.to_gate_snapshot(session, row=baseline_row, model_name=model_name)
+            if baseline_row is not None
+            else None
+        )
+        reference = (
+            repo.to_gate_snapshot(session, row=reference_row, model_name=model_name)
+            if reference_row is not None
+            else None
+        )
+        inp = GateInput(
+            candidate=candidate,
+            baseline=baseline,
+            reference=reference,
+            now=now,
+            history=repo.history(session, model_id=model.id, limit=history_limit),
+            baseline_since=repo.utc(model.baseline_since),
+            known_keys=repo.known_keys(session, model_id=model.id),
+        )
+        verdict = evaluate(inp, policy)
+    except Exception as exc:  # fail closed
+        log.exception("evaluation of %s/%s failed", model_name, post.key)
+        verdict = failed_verdict(
+            exc, policy=policy, baseline_key=baseline_row.key if baseline_row else None
+        )
+    duration_ms = (time.perf_counter() - started) * 1000.0
+    if policy is not None:
+        repo.record_policy(session, policy=policy, now=now)
+    verdict_row = repo.add_verdict(
+        session,
+        model_id=model.id,
+        snapshot_id=snapshot_row.id,
+        baseline_id=baseline_row.id if baseline_row else None,
+        reference_id=reference_row.id if reference_row else None,
+        verdict=verdict,
+        duration_ms=duration_ms,
+        now=now,
+    )
+    if verdict.decision == "promote" and verdict.moves_baseline:
+        repo.set_baseline(
+            session,
+            model=model,
+            snapshot=snapshot_row,
+            cause="verdict",
+            actor="gate",
+            reason="promoted by verdict",
+            verdict_id=verdict_row.id,
+            now=now,
+        )
+        verdict_row.moved_baseline = True
+        session.flush()
+    return Submitted(model, snapshot_row, verdict_row, created=True)
+
+
+def set_baseline_by_hand(
+    session: Session,
+    *,
+    model_name: str,
+    key: str,
+    reason: str,
+    actor: str,
+    now: datetime,
+    cause: str = "manual",
+) -> tuple[ModelRow, SnapshotRow, SnapshotRow | None]:
+    """Promote or roll back by hand: make snapshot *key* the baseline; audited."""
+    from service.errors import InvalidInput, NotFound
+
+    if not reason.strip():
+        raise InvalidInput("a reason is required", field="reason")
+    model = repo.get_model(session, name=model_name, lock=True)
+    if model is None:
+        raise NotFound(f"no model {model_name!r}", field="model")
+    snapshot = repo.get_snapshot(session, model_id=model.id, key=key)
+    if snapshot is None:
+        raise NotFound(f"model {model_name!r} has no snapshot {key!r}", field="snapshot")
+    previous = repo.snapshot_by_id(session, snapshot_id=model.baseline_id)
+    if cause == "manual" and previous is not None and previous.id != snapshot.id:
+        if previous.created_at is not None and snapshot.created_at < previous.created_at:
+            cause = "rollback"
+    repo.set_baseline(
+        session,
+        model=model,
+        snapshot=snapshot,
+        cause=cause,
+        actor=actor,
+        reason=reason,
+        verdict_id=None,
+        now=now,
+    )
+    repo.add_audit(
+        session,
+        actor=actor,
+        action=f"baseline.{cause}",
+        model=model_name,
+        target=key,
+        before={"baseline": previous.key if previous else None},
+        after={"baseline": key},
+        reason=reason,
+        now=now,
+    )
+    return model, snapshot, previous

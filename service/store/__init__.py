@@ -1,0 +1,1 @@
+"""Storage: tables, repository functions, the sample codec, database set-up and retention."""

@@ -1,0 +1,144 @@
+"""Engines, sessions and the migration-state check.
+
+SQLite: WAL journal, foreign keys on, a busy timeout, the synchronous level from settings, and
+every transaction opened with ``BEGIN IMMEDIATE``. A deferred transaction that reads and then
+writes can fail at once with "database is locked" (a busy snapshot) whatever the busy timeout;
+taking the write lock at BEGIN makes writers queue instead, so concurrent posts for one model are
+serialised. PostgreSQL: the row of the model is locked with ``SELECT ... FOR UPDATE`` where the
+baseline changes (see repository functions).
+"""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Iterator
+from contextlib import contextmanager
+from pathlib import Path
+from typing import Any
+
+from sqlalchemy import Engine, create_engine, event, text
+from sqlalchemy.orm import Session, sessionmaker
+
+from service.settings import Settings
+
+log = logging.getLogger("tidegate.store")
+
+ROOT = Path(__file__).resolve().parent.parent.parent
+
+
+class DatabaseNotReady(RuntimeError):
+    """The database is not at the current migration revision."""
+
+
+def make_engine(settings: Settings) -> Engine:
+    url = settings.database_url
+    if url.startswith("sqlite"):
+        engine = create_engine(
+            url,
+            connect_args={"check_same_thread": False, "timeout": settings.sqlite_busy_timeout_ms / 1000},
+        )
+        busy = settings.sqlite_busy_timeout_ms
+        synchronous = settings.sqlite_synchronous
+
+        @event.listens_for(engine, "connect")
+        def _on_connect(dbapi_conn: Any, _record: Any) -> None:
+            dbapi_conn.isolation_level = None  # we issue BEGIN ourselves
+            cursor = dbapi_conn.cursor()
+            cursor.execute("PRAGMA journal_mode=WAL")
+            cursor.execute("PRAGMA foreign_keys=ON")
+            cursor.execute(f"PRAGMA busy_timeout={int(busy)}")
+            cursor.execute(f"PRAGMA synchronous={synchronous}")
+            cursor.close()
+
+        @event.listens_for(engine, "begin")
+        def _on_begin(conn: Any) -> None:
+            conn.exec_driver_sql("BEGIN IMMEDIATE")
+
+        return engine
+    return create_engine(url, pool_pre_ping=True)
+
+
+def make_sessionmaker(engine: Engine) -> sessionmaker[Session]:
+    return sessionmaker(engine, expire_on_commit=False)
+
+
+@contextmanager
+def transaction(factory: sessionmaker[Session]) -> Iterator[Session]:
+    """One session that commits once at the end, or rolls back on any error."""
+    session = factory()
+    try:
+        yield session
+        session.commit()
+    except BaseException:
+        session.rollback()
+        raise
+    finally:
+        session.close()
+
+
+def storage_settings(engine: Engine) -> dict[str, str]:
+    """The storage settings in force, read back from the database (logged at start)."""
+    with engine.connect() as conn:
+        if engine.dialect.name == "sqlite":
+            names = ["journal_mode", "synchronous", "busy_timeout", "foreign_keys"]
+            levels = {"0": "OFF", "1": "NORMAL", "2": "FULL", "3": "EXTRA"}
+            out = {}
+            for name in names:
+                value = str(conn.exec_driver_sql(f"PRAGMA {name}").scalar())
+                out[name] = levels.get(value, value) if name == "synchronous" else value
+            return out
+        if engine.dialect.name == "postgresql":
+            return {
+                name: str(conn.execute(text(f"SHOW {name}")).scalar())
+                for name in ("fsync", "synchronous_commit", "default_transaction_isolation")
+            }
+    return {}
+
+
+def alembic_config(settings: Settings) -> Any:
+    from alembic.config import Config
+
+    cfg = Config()
+    cfg.set_main_option("script_location", str(ROOT / "migrations"))
+    cfg.set_main_option("sqlalchemy.url", settings.database_url.replace("%", "%%"))
+    cfg.attributes["settings"] = settings
+    return cfg
+
+
+def head_revision(settings: Settings) -> str | None:
+    from alembic.script import ScriptDirectory
+
+    return ScriptDirectory.from_config(alembic_config(settings)).get_current_head()
+
+
+def current_revision(engine: Engine) -> str | None:
+    from alembic.runtime.migration import MigrationContext
+
+    with engine.connect() as conn:
+        return MigrationContext.configure(conn).get_current_revision()
+
+
+def upgrade(settings: Settings, revision: str = "head") -> None:
+    from alembic import command
+
+    command.upgrade(alembic_config(settings), revision)
+
+
+def downgrade(settings: Settings, revision: str) -> None:
+    from alembic import command
+
+    command.downgrade(alembic_config(settings), revision)
+
+
+def ensure_ready(settings: Settings, engine: Engine) -> None:
+    """Migrate (when settings say so) or refuse a database not at the head revision."""
+    if settings.migrate_on_start:
+        upgrade(settings)
+    current = current_revision(engine)
+    head = head_revision(settings)
+    if current != head:
+        raise DatabaseNotReady(
+            f"database {engine.url.render_as_string(hide_password=True)} is at revision "
+            f"{current or 'none (empty)'}, the service needs {head}. Run `tidegate db upgrade` "
+            "(or set TIDEGATE_MIGRATE_ON_START=true)."
+        )

@@ -1,0 +1,492 @@
+"""Repository functions: every read and write of the tables goes through here.
+
+All functions are keyword-only, take the request's session and never commit: the caller's
+transaction commits once (see :func:`service.store.db.transaction`).
+"""
+
+from __future__ import annotations
+
+import base64
+from collections.abc import Sequence
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from typing import Any
+
+from sqlalchemy import Select, func, select
+from sqlalchemy.dialects.postgresql import insert as pg_insert
+from sqlalchemy.dialects.sqlite import insert as sqlite_insert
+from sqlalchemy.orm import Session
+
+from service.gate.policy import Policy
+from service.gate.types import Finding, HistoryEntry, Sample, SampleSummary, Snapshot, Verdict
+from service.store import codec
+from service.store.tables import (
+    AuditRow,
+    ModelRow,
+    OverrideRow,
+    PolicyRow,
+    PromotionRow,
+    SampleColumnRow,
+    SnapshotRow,
+    VerdictRow,
+)
+
+
+def utc(value: datetime | None) -> datetime | None:
+    """Attach UTC to a naive datetime read back from SQLite; convert aware ones to UTC."""
+    if value is None:
+        return None
+    if value.tzinfo is None:
+        return value.replace(tzinfo=UTC)
+    return value.astimezone(UTC)
+
+
+# --- models -------------------------------------------------------------------------------
+
+
+def get_model(session: Session, *, name: str, lock: bool = False) -> ModelRow | None:
+    """The model called *name*; with ``lock`` its row is locked until commit (PostgreSQL
+    ``FOR UPDATE``; SQLite transactions already hold the write lock from BEGIN IMMEDIATE)."""
+    stmt = select(ModelRow).where(ModelRow.name == name)
+    if lock:
+        stmt = stmt.with_for_update()
+    return session.scalars(stmt).one_or_none()
+
+
+def get_or_create_model(session: Session, *, name: str, now: datetime) -> ModelRow:
+    """The model called *name*, created if new, locked for the rest of the transaction."""
+    dialect = session.get_bind().dialect.name
+    if dialect in {"postgresql", "sqlite"}:
+        insert = pg_insert if dialect == "postgresql" else sqlite_insert
+        session.execute(
+            insert(ModelRow)
+            .values(name=name, created_at=now)
+            .on_conflict_do_nothing(index_elements=["name"])
+        )
+    elif get_model(session, name=name) is None:  # pragma: no cover - other dialects
+        session.add(ModelRow(name=name, created_at=now))
+        session.flush()
+    model = get_model(session, name=name, lock=True)
+    assert model is not None
+    return model
+
+
+def list_model_rows(session: Session) -> Sequence[ModelRow]:
+    return session.scalars(select(ModelRow).order_by(ModelRow.name)).all()
+
+
+# --- snapshots and samples ----------------------------------------------------------------
+
+
+def get_snapshot(session: Session, *, model_id: int, key: str) -> SnapshotRow | None:
+    return session.scalars(
+        select(SnapshotRow).where(SnapshotRow.model_id == model_id, SnapshotRow.key == key)
+    ).one_or_none()
+
+
+def snapshot_by_id(session: Session, *, snapshot_id: int | None) -> SnapshotRow | None:
+    return None if snapshot_id is None else session.get(SnapshotRow, snapshot_id)
+
+
+def add_snapshot(
+    session: Session,
+    *,
+    model_id: int,
+    key: str,
+    parent: str | None,
+    trained_until: datetime | None,
+    code_version: str | None,
+    rows_trained: int | None,
+    metrics: dict[str, float],
+    tags: dict[str, str],
+    content_digest: str,
+    sample: Sample | None,
+    now: datetime,
+) -> SnapshotRow:
+    """Insert a snapshot with its sample columns (compressed) and the score summary."""
+    row = SnapshotRow(
+        model_id=model_id,
+        key=key,
+        parent_key=parent,
+        trained_until=trained_until,
+        code_version=code_version,
+        rows_trained=rows_trained,
+        metrics=metrics,
+        tags=tags,
+        content_digest=content_digest,
+        sample_rows=0 if sample is None else len(sample),
+        summary=None if sample is None else codec.summarise(sample.score).to_dict(),
+        created_at=now,
+    )
+    session.add(row)
+    session.flush()
+    if sample is not None:
+        for name, codec_name, length, data in codec.encode_sample(sample):
+            session.add(
+                SampleColumnRow(
+                    snapshot_id=row.id, name=name, codec=codec_name, length=length, data=data
+                )
+            )
+        session.flush()
+    return row
+
+
+def load_sample(session: Session, *, snapshot_id: int) -> Sample | None:
+    rows = session.execute(
+        select(
+            SampleColumnRow.name, SampleColumnRow.codec, SampleColumnRow.length, SampleColumnRow.data
+        ).where(SampleColumnRow.snapshot_id == snapshot_id)
+    ).all()
+    if not rows:
+        return None
+    return codec.decode_sample({name: (c, n, data) for name, c, n, data in rows})
+
+
+def to_gate_snapshot(
+    session: Session, *, row: SnapshotRow, model_name: str, with_sample: bool = True
+) -> Snapshot:
+    """The gate's view of a stored snapshot (sample decoded when asked and not pruned)."""
+    return Snapshot(
+        model=model_name,
+        key=row.key,
+        parent=row.parent_key,
+        trained_until=utc(row.trained_until),
+        code_version=row.code_version,
+        rows_trained=row.rows_trained,
+        metrics=dict(row.metrics or {}),
+        tags=dict(row.tags or {}),
+        sample=load_sample(session, snapshot_id=row.id) if with_sample else None,
+        summary=SampleSummary.from_dict(row.summary) if row.summary else None,
+        created_at=utc(row.created_at),
+    )
+
+
+def known_keys(session: Session, *, model_id: int) -> frozenset[str]:
+    return frozenset(
+        session.scalars(select(SnapshotRow.key).where(SnapshotRow.model_id == model_id)).all()
+    )
+
+
+def list_snapshots(
+    session: Session, *, model_id: int, limit: int = 100
+) -> Sequence[SnapshotRow]:
+    return session.scalars(
+        select(SnapshotRow)
+        .where(SnapshotRow.model_id == model_id)
+        .order_by(SnapshotRow.id.desc())
+        .limit(limit)
+    ).all()
+
+
+# --- policies -----------------------------------------------------------------------------
+
+
+def record_policy(session: Session, *, policy: Policy, now: datetime) -> None:
+    """Keep the exact text of *policy* by digest (once)."""
+    exists = session.scalars(select(PolicyRow.id).where(PolicyRow.digest == policy.digest)).first()
+    if exists is None:
+        session.add(PolicyRow(name=policy.name, digest=policy.digest, text=policy.text,
+                              first_seen_at=now))
+        session.flush()
+
+
+def policy_text(session: Session, *, digest: str) -> PolicyRow | None:
+    return session.scalars(select(PolicyRow).where(PolicyRow.digest == digest)).first()
+
+
+# --- verdicts -----------------------------------------------------------------------------
+
+
+def add_verdict(
+    session: Session,
+    *,
+    model_id: int,
+    snapshot_id: int,
+    baseline_id: int | None,
+    reference_id: int | None,
+    verdict: Verdict,
+    duration_ms: float,
+    now: datetime,
+) -> VerdictRow:
+    row = VerdictRow(
+        model_id=model_id,
+        snapshot_id=snapshot_id,
+        baseline_id=baseline_id,
+        reference_id=reference_id,
+        decision=verdict.decision,
+        reasons=list(verdict.reasons),
+        findings=[f.to_dict() for f in verdict.findings],
+        policy_name=verdict.policy_name,
+        policy_digest=verdict.policy_digest,
+        error=verdict.error,
+        moved_baseline=False,
+        duration_ms=duration_ms,
+        created_at=now,
+    )
+    session.add(row)
+    session.flush()
+    return row
+
+
+def verdict_for_snapshot(session: Session, *, snapshot_id: int) -> VerdictRow | None:
+    return session.scalars(select(VerdictRow).where(VerdictRow.snapshot_id == snapshot_id)).first()
+
+
+def get_verdict(session: Session, *, verdict_id: int) -> VerdictRow | None:
+    return session.get(VerdictRow, verdict_id)
+
+
+def overrides_for(session: Session, *, verdict_ids: Sequence[int]) -> dict[int, list[OverrideRow]]:
+    """Overrides of each verdict, oldest first."""
+    out: dict[int, list[OverrideRow]] = {vid: [] for vid in verdict_ids}
+    if not verdict_ids:
+        return out
+    rows = session.scalars(
+        select(OverrideRow).where(OverrideRow.verdict_id.in_(verdict_ids)).order_by(OverrideRow.id)
+    ).all()
+    for row in rows:
+        out[row.verdict_id].append(row)
+    return out
+
+
+def add_override(
+    session: Session, *, verdict_id: int, decision: str, reason: str, actor: str, now: datetime
+) -> OverrideRow:
+    row = OverrideRow(verdict_id=verdict_id, decision=decision, reason=reason, actor=actor,
+                      created_at=now)
+    session.add(row)
+    session.flush()
+    return row
+
+
+def effective_decision(verdict: VerdictRow, overrides: Sequence[OverrideRow]) -> str:
+    """The decision in force: the latest override's, else the gate's own."""
+    return overrides[-1].decision if overrides else verdict.decision
+
+
+def encode_cursor(verdict_id: int) -> str:
+    return base64.urlsafe_b64encode(f"v1:{verdict_id}".encode()).decode().rstrip("=")
+
+
+def decode_cursor(cursor: str) -> int:
+    """The verdict id inside *cursor*; ValueError when it is not one of ours."""
+    try:
+        padded = cursor + "=" * (-len(cursor) % 4)
+        text = base64.urlsafe_b64decode(padded.encode()).decode()
+        tag, _, number = text.partition(":")
+        if tag != "v1":
+            raise ValueError
+        value = int(number)
+        if value < 0:
+            raise ValueError
+        return value
+    except (ValueError, UnicodeDecodeError) as exc:
+        raise ValueError("cursor is not valid; use the next_cursor of an earlier page") from exc
+
+
+def list_verdicts(
+    session: Session,
+    *,
+    model_id: int,
+    decision: str | None = None,
+    since: datetime | None = None,
+    until: datetime | None = None,
+    limit: int = 50,
+    before_id: int | None = None,
+) -> tuple[list[tuple[VerdictRow, SnapshotRow]], int | None]:
+    """Verdicts newest first, and the id to continue before (None on the last page)."""
+    stmt: Select[tuple[VerdictRow, SnapshotRow]] = (
+        select(VerdictRow, SnapshotRow)
+        .join(SnapshotRow, SnapshotRow.id == VerdictRow.snapshot_id)
+        .where(VerdictRow.model_id == model_id)
+    )
+    if decision is not None:
+        stmt = stmt.where(VerdictRow.decision == decision)
+    if since is not None:
+        stmt = stmt.where(VerdictRow.created_at >= since)
+    if until is not None:
+        stmt = stmt.where(VerdictRow.created_at < until)
+    if before_id is not None:
+        stmt = stmt.where(VerdictRow.id < before_id)
+    rows = [(v, s) for v, s in session.execute(stmt.order_by(VerdictRow.id.desc()).limit(limit + 1))]
+    more = len(rows) > limit
+    rows = rows[:limit]
+    return rows, (rows[-1][0].id if more and rows else None)
+
+
+def last_verdict(session: Session, *, model_id: int) -> tuple[VerdictRow, SnapshotRow] | None:
+    rows, _ = list_verdicts(session, model_id=model_id, limit=1)
+    return rows[0] if rows else None
+
+
+def count_verdicts(
+    session: Session, *, model_id: int, decision: str | None = None, since: datetime | None = None
+) -> int:
+    stmt = select(func.count(VerdictRow.id)).where(VerdictRow.model_id == model_id)
+    if decision is not None:
+        stmt = stmt.where(VerdictRow.decision == decision)
+    if since is not None:
+        stmt = stmt.where(VerdictRow.created_at >= since)
+    return int(session.scalar(stmt) or 0)
+
+
+def neighbour_verdicts(session: Session, *, verdict: VerdictRow) -> tuple[int | None, int | None]:
+    """(previous id, next id) among the same model's verdicts."""
+    prev_id = session.scalar(
+        select(func.max(VerdictRow.id)).where(
+            VerdictRow.model_id == verdict.model_id, VerdictRow.id < verdict.id
+        )
+    )
+    next_id = session.scalar(
+        select(func.min(VerdictRow.id)).where(
+            VerdictRow.model_id == verdict.model_id, VerdictRow.id > verdict.id
+        )
+    )
+    return prev_id, next_id
+
+
+# --- baseline and promotions --------------------------------------------------------------
+
+
+def set_baseline(
+    session: Session,
+    *,
+    model: ModelRow,
+    snapshot: SnapshotRow,
+    cause: str,
+    actor: str,
+    reason: str,
+    verdict_id: int | None,
+    now: datetime,
+) -> PromotionRow:
+    """Make *snapshot* the model's baseline and record the promotion."""
+    promotion = PromotionRow(
+        model_id=model.id,
+        snapshot_id=snapshot.id,
+        previous_id=model.baseline_id,
+        cause=cause,
+        verdict_id=verdict_id,
+        actor=actor,
+        reason=reason,
+        created_at=now,
+    )
+    session.add(promotion)
+    model.baseline_id = snapshot.id
+    model.baseline_since = now
+    session.flush()
+    return promotion
+
+
+def promotions(session: Session, *, model_id: int, limit: int = 100) -> Sequence[PromotionRow]:
+    return session.scalars(
+        select(PromotionRow)
+        .where(PromotionRow.model_id == model_id)
+        .order_by(PromotionRow.id.desc())
+        .limit(limit)
+    ).all()
+
+
+# --- history for the gate -----------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class _Promoted:
+    ever: set[int]
+    rolled_back: set[int]
+
+
+def _promotion_state(session: Session, *, model_id: int) -> _Promoted:
+    ever: set[int] = set()
+    rolled_back: set[int] = set()
+    for snapshot_id, previous_id, cause in session.execute(
+        select(PromotionRow.snapshot_id, PromotionRow.previous_id, PromotionRow.cause).where(
+            PromotionRow.model_id == model_id
+        )
+    ):
+        ever.add(snapshot_id)
+        if cause == "rollback" and previous_id is not None:
+            rolled_back.add(previous_id)
+    return _Promoted(ever, rolled_back)
+
+
+def history(session: Session, *, model_id: int, limit: int) -> tuple[HistoryEntry, ...]:
+    """The model's last *limit* verdicts, newest first, as the gate's history.
+
+    ``healthy``: the gate promoted it (not an overridden hold), it became the baseline, and it
+    was not the baseline that a rollback replaced.
+    """
+    if limit <= 0:
+        return ()
+    rows = session.execute(
+        select(VerdictRow, SnapshotRow)
+        .join(SnapshotRow, SnapshotRow.id == VerdictRow.snapshot_id)
+        .where(VerdictRow.model_id == model_id)
+        .order_by(VerdictRow.id.desc())
+        .limit(limit)
+    ).all()
+    overrides = overrides_for(session, verdict_ids=[v.id for v, _ in rows])
+    state = _promotion_state(session, model_id=model_id)
+    entries = []
+    for verdict, snap in rows:
+        effective = effective_decision(verdict, overrides[verdict.id])
+        values = {
+            f["check"]: float(f["value"])
+            for f in verdict.findings
+            if isinstance(f, dict) and f.get("value") is not None
+        }
+        healthy = (
+            verdict.decision == "promote"
+            and effective == "promote"
+            and snap.id in state.ever
+            and snap.id not in state.rolled_back
+        )
+        entries.append(
+            HistoryEntry(
+                snapshot_key=snap.key,
+                created_at=utc(verdict.created_at),  # type: ignore[arg-type]
+                decision=verdict.decision,  # type: ignore[arg-type]
+                effective_decision=effective,  # type: ignore[arg-type]
+                healthy=healthy,
+                rows_trained=snap.rows_trained,
+                trained_until=utc(snap.trained_until),
+                values=values,
+            )
+        )
+    return tuple(entries)
+
+
+# --- audit --------------------------------------------------------------------------------
+
+
+def add_audit(
+    session: Session,
+    *,
+    actor: str,
+    action: str,
+    model: str | None,
+    target: str | None,
+    before: dict[str, Any] | None,
+    after: dict[str, Any] | None,
+    reason: str,
+    now: datetime,
+) -> AuditRow:
+    row = AuditRow(at=now, actor=actor, action=action, model=model, target=target, before=before,
+                   after=after, reason=reason)
+    session.add(row)
+    session.flush()
+    return row
+
+
+def list_audit(
+    session: Session, *, model: str | None = None, limit: int = 100, before_id: int | None = None
+) -> Sequence[AuditRow]:
+    stmt = select(AuditRow)
+    if model is not None:
+        stmt = stmt.where(AuditRow.model == model)
+    if before_id is not None:
+        stmt = stmt.where(AuditRow.id < before_id)
+    return session.scalars(stmt.order_by(AuditRow.id.desc()).limit(limit)).all()
+
+
+def findings_of(verdict: VerdictRow) -> list[Finding]:
+    return [Finding.from_dict(f) for f in verdict.findings]

@@ -1,0 +1,135 @@
+"""Read models: what the API, the CLI and the pages show, built from stored rows.
+
+Plain dictionaries of JSON-safe values; the API validates them into its response schemas, the
+pages render them. One place decides what a verdict or a model looks like to a person.
+"""
+
+from __future__ import annotations
+
+from datetime import datetime, timedelta
+from typing import Any
+
+from sqlalchemy.orm import Session
+
+from service.store import repo
+from service.store.tables import ModelRow, OverrideRow, SnapshotRow, VerdictRow
+
+
+def iso(value: datetime | None) -> str | None:
+    value = repo.utc(value)
+    return value.isoformat().replace("+00:00", "Z") if value else None
+
+
+def override_view(row: OverrideRow) -> dict[str, Any]:
+    return {
+        "id": row.id,
+        "decision": row.decision,
+        "reason": row.reason,
+        "actor": row.actor,
+        "created_at": iso(row.created_at),
+    }
+
+
+def verdict_summary(
+    verdict: VerdictRow, snapshot: SnapshotRow, overrides: list[OverrideRow], model: str
+) -> dict[str, Any]:
+    return {
+        "verdict_id": verdict.id,
+        "model": model,
+        "snapshot": snapshot.key,
+        "decision": verdict.decision,
+        "effective_decision": repo.effective_decision(verdict, overrides),
+        "overridden": bool(overrides),
+        "reasons": list(verdict.reasons),
+        "moved_baseline": verdict.moved_baseline,
+        "created_at": iso(verdict.created_at),
+        "trained_until": iso(snapshot.trained_until),
+    }
+
+
+def verdict_detail(session: Session, *, verdict: VerdictRow) -> dict[str, Any]:
+    snapshot = repo.snapshot_by_id(session, snapshot_id=verdict.snapshot_id)
+    model = session.get(ModelRow, verdict.model_id)
+    assert snapshot is not None and model is not None
+    baseline = repo.snapshot_by_id(session, snapshot_id=verdict.baseline_id)
+    reference = repo.snapshot_by_id(session, snapshot_id=verdict.reference_id)
+    overrides = repo.overrides_for(session, verdict_ids=[verdict.id])[verdict.id]
+    prev_id, next_id = repo.neighbour_verdicts(session, verdict=verdict)
+    out = verdict_summary(verdict, snapshot, overrides, model.name)
+    out.update(
+        {
+            "baseline": baseline.key if baseline else None,
+            "reference": reference.key if reference else None,
+            "policy": verdict.policy_name,
+            "policy_digest": verdict.policy_digest,
+            "error": verdict.error,
+            "duration_ms": round(verdict.duration_ms, 3),
+            "findings": list(verdict.findings),
+            "overrides": [override_view(o) for o in overrides],
+            "previous_verdict_id": prev_id,
+            "next_verdict_id": next_id,
+        }
+    )
+    return out
+
+
+def snapshot_view(session: Session, *, model: ModelRow, snapshot: SnapshotRow) -> dict[str, Any]:
+    verdict = repo.verdict_for_snapshot(session, snapshot_id=snapshot.id)
+    columns = []
+    if snapshot.sample_pruned_at is None and snapshot.sample_rows:
+        sample = repo.load_sample(session, snapshot_id=snapshot.id)
+        columns = sorted(sample.columns) if sample is not None else []
+    return {
+        "model": model.name,
+        "key": snapshot.key,
+        "parent": snapshot.parent_key,
+        "trained_until": iso(snapshot.trained_until),
+        "code_version": snapshot.code_version,
+        "rows_trained": snapshot.rows_trained,
+        "metrics": dict(snapshot.metrics or {}),
+        "tags": dict(snapshot.tags or {}),
+        "sample_rows": snapshot.sample_rows,
+        "columns": columns,
+        "summary": snapshot.summary,
+        "sample_pruned_at": iso(snapshot.sample_pruned_at),
+        "created_at": iso(snapshot.created_at),
+        "verdict_id": verdict.id if verdict else None,
+        "is_baseline": model.baseline_id == snapshot.id,
+    }
+
+
+def consecutive_holds(session: Session, *, model_id: int, limit: int = 50) -> int:
+    """How many of the latest verdicts in a row are holds (overrides to promote end a run)."""
+    rows, _ = repo.list_verdicts(session, model_id=model_id, limit=limit)
+    overrides = repo.overrides_for(session, verdict_ids=[v.id for v, _ in rows])
+    count = 0
+    for verdict, _ in rows:
+        if repo.effective_decision(verdict, overrides[verdict.id]) != "hold":
+            break
+        count += 1
+    return count
+
+
+def model_view(session: Session, *, model: ModelRow, now: datetime) -> dict[str, Any]:
+    baseline = repo.snapshot_by_id(session, snapshot_id=model.baseline_id)
+    reference = repo.snapshot_by_id(session, snapshot_id=model.reference_id)
+    last = repo.last_verdict(session, model_id=model.id)
+    last_view = None
+    if last is not None:
+        overrides = repo.overrides_for(session, verdict_ids=[last[0].id])[last[0].id]
+        last_view = verdict_summary(last[0], last[1], overrides, model.name)
+    since = repo.utc(model.baseline_since)
+    age = (now - since).total_seconds() if since else None
+    return {
+        "name": model.name,
+        "baseline": baseline.key if baseline else None,
+        "baseline_since": iso(since),
+        "baseline_age_seconds": round(age, 1) if age is not None else None,
+        "reference": reference.key if reference else None,
+        "last_verdict": last_view,
+        "holds_24h": repo.count_verdicts(
+            session, model_id=model.id, decision="hold", since=now - timedelta(hours=24)
+        ),
+        "consecutive_holds": consecutive_holds(session, model_id=model.id),
+        "created_at": iso(model.created_at),
+    }
