@@ -23,7 +23,7 @@ import numpy as np
 from pydantic import Field, field_validator, model_validator
 
 from service.gate.checks.base import CheckContext, format_p, register, skipped
-from service.gate.checks.segments import CorrectedSegmentKeys, Unit, matching_rows, split
+from service.gate.checks.segments import CorrectedSegmentKeys, Unit, matching_rows, split, where
 from service.gate.types import Finding, Sample
 from service.stats import distance
 from service.stats import drift as drift_stats
@@ -220,7 +220,7 @@ def run_drift(config: DriftConfig, ctx: CheckContext) -> list[Finding]:
     limit_text = _limit_text(config)
     head = f"score {label} {whole.value:.3g} vs {config.against}{ptext}"
     if over_units:
-        message = f"{head}; exceeds {limit_text} in {', '.join(over_units)}"
+        message = f"{head}; exceeds {limit_text}{where(over_units)}"
     elif config.max is not None and any(r["value"] > config.max for r in table):
         message = f"{head}; above max {config.max:g} but not significant at {config.alpha:g} (adjusted)"
     else:

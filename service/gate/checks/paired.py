@@ -23,7 +23,7 @@ import numpy as np
 from pydantic import Field, model_validator
 
 from service.gate.checks.base import CheckContext, register, skipped
-from service.gate.checks.segments import SegmentKeys, codes_of, split
+from service.gate.checks.segments import SegmentKeys, codes_of, split, where
 from service.gate.types import Finding
 from service.stats import agreement
 
@@ -128,7 +128,7 @@ def run_paired(config: PairedConfig, ctx: CheckContext) -> list[Finding]:
     low, high = whole.interval
     head = f"{label} {whole.statistic:.4g} vs baseline on {whole.n} {'places' if config.top_k else 'rows'} ({config.confidence:.0%} CI [{low:.4g}, {high:.4g}])"
     if over:
-        message = f"{head}; {word} the limit {limit:g} in {', '.join(over)}"
+        message = f"{head}; {word} the limit {limit:g}{where(over)}"
     else:
         message = f"{head}; within the limit {limit:g}"
     return [

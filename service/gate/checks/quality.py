@@ -47,6 +47,7 @@ from service.gate.checks.comparisons import (
 from service.gate.checks.segments import (
     ALL,
     CorrectedSegmentKeys,
+    where,
     Unit,
     codes_of,
     kept_codes,
@@ -325,7 +326,7 @@ def _finding(
     )
     if leaks:
         outcome = "breach"
-        tail = f"gain above max_gain {config.max_gain:g} in {', '.join(leaks)}: a label may have leaked"
+        tail = f"gain above max_gain {config.max_gain:g}{where(leaks)}: a label may have leaked"
     elif problems or breaches:
         outcome = "breach"
         parts = list(problems)
@@ -335,7 +336,7 @@ def _finding(
     elif unsure:
         outcome = "inconclusive"
         tail = (
-            f"cannot tell against the margin {config.margin or 0:g} in {', '.join(unsure)}: the "
+            f"cannot tell against the margin {config.margin or 0:g}{where(unsure)}: the "
             f"interval straddles it (detectable change at this size: {mde:.3g})"
         )
     else:
@@ -372,13 +373,13 @@ def _finding(
     )
 
 
-def _breach_text(config: QualityConfig, where: list[str]) -> str:
-    place = ", ".join(where)
+def _breach_text(config: QualityConfig, units: list[str]) -> str:
+    place = where(units)
     if config.rule == "non-inferiority":
-        return f"worse than the {config.against} by more than the margin {config.margin:g} in {place}"
+        return f"worse than the {config.against} by more than the margin {config.margin:g}{place}"
     if config.rule == "superiority":
-        return f"shown not better than the {config.against} by {config.margin or 0:g} in {place}"
-    return f"point estimate worse than the {config.against} by more than {config.margin:g} in {place}"
+        return f"shown not better than the {config.against} by {config.margin or 0:g}{place}"
+    return f"point estimate worse than the {config.against} by more than {config.margin:g}{place}"
 
 
 def _ok_text(config: QualityConfig) -> str:

@@ -49,6 +49,13 @@ class CorrectedSegmentKeys(SegmentKeys):
     )
 
 
+def where(labels: list[str]) -> str:
+    """`` in device=web, all rows`` for a message; empty when only all rows are meant."""
+    if not labels or labels == [ALL]:
+        return ""
+    return " in " + ", ".join("all rows" if label == ALL else label for label in labels)
+
+
 @dataclass(frozen=True)
 class Unit:
     """One row selection a check runs on: all rows, or one segment value."""
