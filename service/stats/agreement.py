@@ -59,10 +59,14 @@ def _z(confidence: float) -> float:
     return float(sps.norm.ppf(0.5 + confidence / 2.0))
 
 
-def midranks(values: np.ndarray) -> np.ndarray:
-    """1-based ranks; tied values share the mean of their places (``scipy.stats.rankdata``)."""
+def midranks(values: np.ndarray, *, order: np.ndarray | None = None) -> np.ndarray:
+    """1-based ranks; tied values share the mean of their places (``scipy.stats.rankdata``).
+
+    *order* is ``np.argsort(values)`` when the caller has it.
+    """
     n = values.size
-    order = np.argsort(values)
+    if order is None:
+        order = np.argsort(values)
     s = values[order]
     new = np.empty(n, dtype=bool)
     new[0] = True
@@ -88,20 +92,28 @@ def mean_abs_change(
     q = float(sps.t.ppf(0.5 + confidence / 2.0, d.size - 1))
     se = float(np.std(d, ddof=1)) / math.sqrt(d.size)
     mean = float(d.mean())
-    return AgreementResult(statistic=mean, interval=(max(0.0, mean - q * se), mean + q * se), n=d.size)
+    return AgreementResult(
+        statistic=mean, interval=(max(0.0, mean - q * se), mean + q * se), n=d.size
+    )
 
 
-def spearman(candidate: object, baseline: object, *, confidence: float = 0.95) -> AgreementResult:
+def spearman(
+    candidate: object,
+    baseline: object,
+    *,
+    confidence: float = 0.95,
+    orders: tuple[np.ndarray, np.ndarray] | None = None,
+) -> AgreementResult:
     """Spearman's rank correlation of two scores of the same rows [1].
 
     Pearson correlation of the midranks (equal to ``scipy.stats.spearmanr``). The interval is
     ``tanh(atanh(r) ± z sqrt((1 + r²/2) / (n - 3)))`` [2]; needs n >= 4. A constant score has
-    no rank correlation: ValueError.
+    no rank correlation: ValueError. *orders* are the two ``argsort`` when the caller has them.
     """
     c, b = _pair(candidate, baseline, min_size=4)
     z = _z(confidence)
-    rc = midranks(c)
-    rb = midranks(b)
+    rc = midranks(c, order=None if orders is None else orders[0])
+    rb = midranks(b, order=None if orders is None else orders[1])
     rc -= rc.mean()
     rb -= rb.mean()
     denom = math.sqrt(float(np.dot(rc, rc)) * float(np.dot(rb, rb)))

@@ -76,12 +76,18 @@ def unpaired_replicates(
 ) -> np.ndarray:
     """Replicates of ``candidate(w_c) - baseline(w_b)`` with independent weights per sample."""
     cand = np.concatenate(
-        [np.asarray(candidate(w), dtype=np.float64) for w in weight_blocks(n_candidate, resamples, rng)]
+        [
+            np.asarray(candidate(w), dtype=np.float64)
+            for w in weight_blocks(n_candidate, resamples, rng)
+        ]
     )
     base = np.concatenate(
-        [np.asarray(baseline(w), dtype=np.float64) for w in weight_blocks(n_baseline, resamples, rng)]
+        [
+            np.asarray(baseline(w), dtype=np.float64)
+            for w in weight_blocks(n_baseline, resamples, rng)
+        ]
     )
-    return cand - base
+    return np.asarray(cand - base, dtype=np.float64)
 
 
 # Weighted statistics: each maps weights (b, n) to (b,) values.
@@ -91,7 +97,7 @@ def weighted_mean(values: np.ndarray) -> Statistic:
     """``w -> sum(w x) / sum(w)`` for fixed per-row values x (log loss terms, Brier terms)."""
 
     def stat(w: np.ndarray) -> np.ndarray:
-        return (w @ values) / w.sum(axis=1)
+        return np.asarray((w @ values) / w.sum(axis=1), dtype=np.float64)
 
     return stat
 
@@ -115,7 +121,7 @@ def weighted_binned_abs_sum(gap: np.ndarray, bin_index: np.ndarray, n_bins: int)
 
     def stat(w: np.ndarray) -> np.ndarray:
         sums = np.add.reduceat(w[:, order] * sorted_gap, starts, axis=1)
-        return np.abs(sums).sum(axis=1) / w.sum(axis=1)
+        return np.asarray(np.abs(sums).sum(axis=1) / w.sum(axis=1), dtype=np.float64)
 
     return stat
 

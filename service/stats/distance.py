@@ -57,7 +57,9 @@ class BinnedDistance:
     candidate_share: tuple[float, ...]
 
 
-def _shared_bins(base: np.ndarray, cand: np.ndarray, bins: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _shared_bins(
+    base: np.ndarray, cand: np.ndarray, bins: int
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     edges = quantile_edges(base, bins)
     n_bins = edges.size + 1
     base_counts = np.bincount(np.searchsorted(edges, base, side="left"), minlength=n_bins)
@@ -172,9 +174,14 @@ def _ad_inf_cdf(z: float) -> float:
     if z <= 0:
         return 0.0
     if z < 2.0:
-        return math.exp(-1.2337141 / z) / math.sqrt(z) * (
-            2.00012
-            + (0.247105 - (0.0649821 - (0.0347962 - (0.011672 - 0.00168691 * z) * z) * z) * z) * z
+        return (
+            math.exp(-1.2337141 / z)
+            / math.sqrt(z)
+            * (
+                2.00012
+                + (0.247105 - (0.0649821 - (0.0347962 - (0.011672 - 0.00168691 * z) * z) * z) * z)
+                * z
+            )
         )
     return math.exp(
         -math.exp(
@@ -265,7 +272,9 @@ def mean_shift(baseline: object, candidate: object, *, spread: Spread = "std") -
     cand = finite_1d(candidate, "candidate", min_size=2)
     scale = spread_of(base, spread)
     diff = float(cand.mean() - base.mean())
-    se = math.sqrt(float(np.var(cand, ddof=1)) / cand.size + float(np.var(base, ddof=1)) / base.size)
+    se = math.sqrt(
+        float(np.var(cand, ddof=1)) / cand.size + float(np.var(base, ddof=1)) / base.size
+    )
     if se > 0:
         vc = float(np.var(cand, ddof=1)) / cand.size
         vb = float(np.var(base, ddof=1)) / base.size

@@ -58,7 +58,9 @@ def quantile_edges(baseline: np.ndarray, bins: int) -> np.ndarray:
     return np.unique(np.quantile(baseline, levels))
 
 
-def psi(baseline: object, candidate: object, *, bins: int = 10, smoothing: float = 0.5) -> PSIResult:
+def psi(
+    baseline: object, candidate: object, *, bins: int = 10, smoothing: float = 0.5
+) -> PSIResult:
     """Population stability index of *candidate* against *baseline*.
 
     Parameters

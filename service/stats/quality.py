@@ -75,7 +75,7 @@ def log_loss_terms(label: object, score: object) -> np.ndarray:
     y, p = _pair(label, score)
     p = np.clip(p, LOG_LOSS_EPS, 1.0 - LOG_LOSS_EPS)
     # Only one logarithm per row: the probability given to the outcome that happened.
-    return -np.log(np.where(y > 0, p, 1.0 - p))
+    return np.asarray(-np.log(np.where(y > 0, p, 1.0 - p)), dtype=np.float64)
 
 
 def log_loss(label: object, score: object) -> float:
@@ -92,7 +92,7 @@ def log_loss(label: object, score: object) -> float:
 def brier_terms(label: object, score: object) -> np.ndarray:
     """Per-row squared error ``(p - y)²``."""
     y, p = _pair(label, score)
-    return (p - y) ** 2
+    return np.asarray((p - y) ** 2, dtype=np.float64)
 
 
 def brier(label: object, score: object) -> float:

@@ -142,7 +142,9 @@ class GroupedLabels:
             raise ValueError(f"gain must be 'linear' or 'exponential', got {gain!r}")
         values = finite_1d(score, "score")
         if values.size != self.codes.size:
-            raise ValueError(f"score and group differ in length ({values.size} vs {self.codes.size})")
+            raise ValueError(
+                f"score and group differ in length ({values.size} vs {self.codes.size})"
+            )
         order = self.order(values)
         g = self.codes[order]
         place = np.arange(g.size, dtype=np.int64) - self.start[g]  # 0-based place in group
@@ -151,7 +153,9 @@ class GroupedLabels:
         has_relevant = self.relevant > 0
         if metric == "ndcg":
             discount = 1.0 / np.log2(place[top] + 2.0)
-            dcg = np.bincount(g[top], weights=_gain(rel[top], gain) * discount, minlength=self.n_groups)
+            dcg = np.bincount(
+                g[top], weights=_gain(rel[top], gain) * discount, minlength=self.n_groups
+            )
             ideal = np.bincount(
                 g[top],
                 weights=_gain(self.ideal_sorted[top], gain) * discount,

@@ -18,7 +18,9 @@ NOW = datetime(2026, 12, 1, 3, 0, tzinfo=UTC)
 
 
 def policy(check: str) -> object:
-    return parse_policy(f'models = ["*"]\n[sample]\nmin_rows = 10\n[[checks]]\nname = "c"\n{check}\n', name="t")
+    return parse_policy(
+        f'models = ["*"]\n[sample]\nmin_rows = 10\n[[checks]]\nname = "c"\n{check}\n', name="t"
+    )
 
 
 def run(cand: dict[str, np.ndarray], base: dict[str, np.ndarray] | None, check: str) -> Finding:
@@ -53,7 +55,12 @@ def test_churn_at_threshold_with_segments() -> None:
     cols = paired(2, noise=0.1)
     web = cols["segment.device"] == "web"
     cols["score"][web] = np.clip(cols["baseline_score"][web] + 0.3, 0, 1)  # web moves a lot
-    f = run(cols, None, 'kind = "paired"\nstatistic = "churn"\nthreshold = 0.5\nmax = 0.2\nsegments = ["device"]\nmin_segment_rows = 100')
+    f = run(
+        cols,
+        None,
+        'kind = "paired"\nstatistic = "churn"\nthreshold = 0.5\nmax = 0.2\n'
+        'segments = ["device"]\nmin_segment_rows = 100',
+    )
     table = {r["segment"]: r for r in f.details["segments"]}
     flips = (cols["score"] >= 0.5) != (cols["baseline_score"] >= 0.5)
     assert table["device=web"]["value"] == pytest.approx(flips[web].mean())
@@ -63,7 +70,10 @@ def test_churn_at_threshold_with_segments() -> None:
 
 def test_top_k_churn_needs_groups() -> None:
     cols = paired(3)
-    assert run(cols, None, 'kind = "paired"\nstatistic = "churn"\ntop_k = 3\nmax = 0.2').outcome == "skipped"
+    assert (
+        run(cols, None, 'kind = "paired"\nstatistic = "churn"\ntop_k = 3\nmax = 0.2').outcome
+        == "skipped"
+    )
     cols["group"] = np.array([f"order-{i // 10}" for i in range(cols["score"].size)], dtype=object)
     f = run(cols, None, 'kind = "paired"\nstatistic = "churn"\ntop_k = 3\nmax = 0.9')
     assert f.outcome == "ok" and 0.0 < f.value < 0.9  # type: ignore[operator]
@@ -72,7 +82,9 @@ def test_top_k_churn_needs_groups() -> None:
 def test_paired_skipped_without_baseline_scores() -> None:
     cols = paired(4)
     del cols["baseline_score"]
-    assert run(cols, None, 'kind = "paired"\nstatistic = "spearman"\nmin = 0.9').outcome == "skipped"
+    assert (
+        run(cols, None, 'kind = "paired"\nstatistic = "spearman"\nmin = 0.9').outcome == "skipped"
+    )
 
 
 @pytest.mark.parametrize(
@@ -80,10 +92,23 @@ def test_paired_skipped_without_baseline_scores() -> None:
     [
         ('kind = "paired"\nstatistic = "spearman"\nmax = 0.9', "(top level)", "takes 'min'"),
         ('kind = "paired"\nstatistic = "churn"\nmax = 0.1', "(top level)", "exactly one of"),
-        ('kind = "paired"\nstatistic = "churn"\nmax = 0.1\nthreshold = 0.5\nagainst = "reference"', "(top level)", "compare with the baseline"),
-        ('kind = "drift"\nstatistic = "wasserstein"\nalpha = 0.01', "(top level)", "has no p-value"),
+        (
+            'kind = "paired"\nstatistic = "churn"\nmax = 0.1\nthreshold = 0.5\n'
+            'against = "reference"',
+            "(top level)",
+            "compare with the baseline",
+        ),
+        (
+            'kind = "drift"\nstatistic = "wasserstein"\nalpha = 0.01',
+            "(top level)",
+            "has no p-value",
+        ),
         ('kind = "drift"\nstatistic = "psi"', "(top level)", "set max"),
-        ('kind = "drift"\nstatistic = "hellinger"\nmax = 0.1', "statistic", "unknown drift statistic"),
+        (
+            'kind = "drift"\nstatistic = "hellinger"\nmax = 0.1',
+            "statistic",
+            "unknown drift statistic",
+        ),
     ],
 )
 def test_policy_errors(check: str, key: str, text: str) -> None:
@@ -99,16 +124,32 @@ def scores(seed: int, n: int, shift: float = 0.0) -> np.ndarray:
 @pytest.mark.parametrize("statistic", ["js", "wasserstein", "ad", "mean_shift", "quantile_shift"])
 def test_new_drift_statistics_run_from_a_policy(statistic: str) -> None:
     base = {"score": scores(1, 4000)}
-    same = run({"score": scores(2, 4000)}, base, f'kind = "drift"\nstatistic = "{statistic}"\nmax = 1000.0')
-    moved = run({"score": scores(3, 4000, 0.05)}, base, f'kind = "drift"\nstatistic = "{statistic}"\nmax = 1000.0')
+    same = run(
+        {"score": scores(2, 4000)}, base, f'kind = "drift"\nstatistic = "{statistic}"\nmax = 1000.0'
+    )
+    moved = run(
+        {"score": scores(3, 4000, 0.05)},
+        base,
+        f'kind = "drift"\nstatistic = "{statistic}"\nmax = 1000.0',
+    )
     assert same.outcome == "ok" and moved.outcome == "ok"
     assert moved.value > same.value  # type: ignore[operator]
 
 
 def test_ad_with_alpha_alone_is_a_pure_test() -> None:
     base = {"score": scores(1, 3000)}
-    assert run({"score": scores(2, 3000)}, base, 'kind = "drift"\nstatistic = "ad"\nalpha = 0.001').outcome == "ok"
-    assert run({"score": scores(3, 3000, 0.1)}, base, 'kind = "drift"\nstatistic = "ad"\nalpha = 0.001').outcome == "breach"
+    assert (
+        run(
+            {"score": scores(2, 3000)}, base, 'kind = "drift"\nstatistic = "ad"\nalpha = 0.001'
+        ).outcome
+        == "ok"
+    )
+    assert (
+        run(
+            {"score": scores(3, 3000, 0.1)}, base, 'kind = "drift"\nstatistic = "ad"\nalpha = 0.001'
+        ).outcome
+        == "breach"
+    )
 
 
 def test_psi_limit_is_sample_size_aware_with_alpha() -> None:
@@ -138,7 +179,8 @@ def test_drift_segments_are_adjusted_by_holm() -> None:
     f = run(
         {"score": cand, "segment.device": device_c},
         {"score": scores(10, n), "segment.device": device_b},
-        'kind = "drift"\nstatistic = "ks"\nmax = 0.05\nalpha = 0.01\nsegments = ["device"]\nmin_segment_rows = 100',
+        'kind = "drift"\nstatistic = "ks"\nmax = 0.05\nalpha = 0.01\n'
+        'segments = ["device"]\nmin_segment_rows = 100',
     )
     table = [r for r in f.details["segments"] if "pvalue" in r]
     assert [r["segment"] for r in table] == ["(all)", "device=app", "device=web"]

@@ -68,9 +68,14 @@ def paired_sample(
     }
 
 
-def judge(columns: dict[str, np.ndarray], pol: object, baseline: dict[str, np.ndarray] | None = None) -> Finding:
+def judge(
+    columns: dict[str, np.ndarray], pol: object, baseline: dict[str, np.ndarray] | None = None
+) -> Finding:
     cand = Snapshot(model="shelf-ranker", key="c", sample=Sample(columns))
-    base_cols = baseline or {"score": columns["baseline_score"], "label": columns.get("label", columns["score"])}
+    base_cols = baseline or {
+        "score": columns["baseline_score"],
+        "label": columns.get("label", columns["score"]),
+    }
     base = Snapshot(model="shelf-ranker", key="b", sample=Sample(base_cols))
     verdict = evaluate(GateInput(candidate=cand, baseline=base, now=NOW), pol)  # type: ignore[arg-type]
     return next(f for f in verdict.findings if f.check == "q")
@@ -91,12 +96,20 @@ def test_finding_numbers_equal_delong_and_mde() -> None:
     f = judge(cols, policy(AUC_NI))
     ref = delong_paired(cols["label"], cols["score"], cols["baseline_score"])
     assert f.value == pytest.approx(ref.difference, abs=1e-12)
-    assert f.candidate_value == pytest.approx(ref.candidate) and f.baseline_value == pytest.approx(ref.baseline)
+    assert f.candidate_value == pytest.approx(ref.candidate) and f.baseline_value == pytest.approx(
+        ref.baseline
+    )
     z = 1.959963984540054  # normal 97.5% point
-    assert f.interval == pytest.approx((ref.difference - z * ref.se, ref.difference + z * ref.se), rel=1e-9)
-    assert f.details["mde"] == pytest.approx(minimum_detectable_effect(ref.se, confidence=0.95, power=0.8))
+    assert f.interval == pytest.approx(
+        (ref.difference - z * ref.se, ref.difference + z * ref.se), rel=1e-9
+    )
+    assert f.details["mde"] == pytest.approx(
+        minimum_detectable_effect(ref.se, confidence=0.95, power=0.8)
+    )
     # pvalue: the non-inferiority test, H0 "worse by at least the margin"
-    assert f.pvalue == pytest.approx(0.5 * math.erfc((ref.difference + 0.005) / ref.se / math.sqrt(2)), rel=1e-6)
+    assert f.pvalue == pytest.approx(
+        0.5 * math.erfc((ref.difference + 0.005) / ref.se / math.sqrt(2)), rel=1e-6
+    )
 
 
 def test_clear_regression_is_a_breach_and_holds() -> None:
@@ -123,7 +136,10 @@ def test_superiority_and_limit_rules() -> None:
     better = paired_sample(5, candidate_noise=0.3, baseline_noise=1.0)
     assert judge(better, policy('metric = "auc"\nrule = "superiority"')).outcome == "ok"
     same = paired_sample(6)
-    assert judge(same, policy('metric = "auc"\nrule = "superiority"\nmargin = 0.01')).outcome == "breach"
+    assert (
+        judge(same, policy('metric = "auc"\nrule = "superiority"\nmargin = 0.01')).outcome
+        == "breach"
+    )
     worse = paired_sample(7, candidate_noise=1.3)
     f = judge(worse, policy('metric = "auc"\nrule = "limit"\nmargin = 0.001'))
     assert f.outcome == "breach" and f.details["null"].endswith("no change (two-sided)")
@@ -145,9 +161,17 @@ def test_mean_decomposable_metrics_use_paired_t(metric: str, better: str) -> Non
 
 def test_regression_in_one_segment_is_found_and_adjusted() -> None:
     cols = paired_sample(10, n=40_000, web_noise=2.2)
-    f = judge(cols, policy(AUC_NI, extra='segments = ["device", "reader_tenure"]\nmin_segment_rows = 500'))
+    f = judge(
+        cols, policy(AUC_NI, extra='segments = ["device", "reader_tenure"]\nmin_segment_rows = 500')
+    )
     table = {row["segment"]: row for row in f.details["segments"]}
-    assert set(table) == {"(all)", "device=app", "device=web", "reader_tenure=new", "reader_tenure=returning"}
+    assert set(table) == {
+        "(all)",
+        "device=app",
+        "device=web",
+        "reader_tenure=new",
+        "reader_tenure=returning",
+    }
     assert table["device=web"]["outcome"] == "breach"
     assert table["device=app"]["outcome"] in ("ok", "inconclusive")
     assert f.outcome == "breach" and "device=web" in f.message
@@ -163,7 +187,12 @@ def test_regression_in_one_segment_is_found_and_adjusted() -> None:
 
 def test_benjamini_hochberg_and_small_segments() -> None:
     cols = paired_sample(11, n=6000)
-    f = judge(cols, policy(AUC_NI, extra='segments = ["reader_tenure"]\nmin_segment_rows = 2500\ncorrection = "bh"'))
+    f = judge(
+        cols,
+        policy(
+            AUC_NI, extra='segments = ["reader_tenure"]\nmin_segment_rows = 2500\ncorrection = "bh"'
+        ),
+    )
     assert f.details["correction"] == "bh"
     assert [t["segment"] for t in f.details["too_small"]] == ["reader_tenure=new"]
     rows = [r for r in f.details["segments"] if "p_worse" in r]
@@ -177,10 +206,16 @@ def test_unpaired_uses_the_baselines_own_sample() -> None:
     del cand_cols["baseline_score"]
     base_only = {"score": base_cols["score"], "label": base_cols["label"]}
     f = judge(cand_cols, policy(AUC_NI), baseline=base_only)
-    ref = delong_unpaired(cand_cols["label"], cand_cols["score"], base_only["label"], base_only["score"])
+    ref = delong_unpaired(
+        cand_cols["label"], cand_cols["score"], base_only["label"], base_only["score"]
+    )
     assert f.details["mode"] == "unpaired" and f.details["method"] == "delong-unpaired"
     assert f.value == pytest.approx(ref.difference, abs=1e-12)
-    g = judge(cand_cols, policy('metric = "logloss"\nrule = "non-inferiority"\nmargin = 0.01'), baseline=base_only)
+    g = judge(
+        cand_cols,
+        policy('metric = "logloss"\nrule = "non-inferiority"\nmargin = 0.01'),
+        baseline=base_only,
+    )
     assert g.details["method"] == "welch-t"
 
 
@@ -202,9 +237,13 @@ def test_calibration_ratio_and_ece_use_a_seeded_bootstrap() -> None:
     f1, f2 = judge(cols, pol), judge(cols, pol)
     assert f1.details["method"] == "bootstrap-paired"
     assert f1.interval == f2.interval  # same seed, same interval
-    other_seed = parse_policy(pol.text.replace('models = ["*"]', 'models = ["*"]\nseed = 7'), name="t")  # type: ignore[attr-defined]
+    other_seed = parse_policy(
+        pol.text.replace('models = ["*"]', 'models = ["*"]\nseed = 7'), name="t"
+    )  # type: ignore[attr-defined]
     assert judge(cols, other_seed).interval != f1.interval
-    ratio = judge(cols, policy('metric = "calibration_ratio"\nrule = "limit"\nmargin = 0.05\nresamples = 100'))
+    ratio = judge(
+        cols, policy('metric = "calibration_ratio"\nrule = "limit"\nmargin = 0.05\nresamples = 100')
+    )
     assert ratio.details["method"] == "bootstrap-paired"
     assert ratio.candidate_value == pytest.approx(cols["score"].sum() / cols["label"].sum())
 
@@ -222,7 +261,9 @@ def test_forced_bootstrap_agrees_with_delong() -> None:
     assert width_boot == pytest.approx(width_closed, rel=0.15)
 
 
-def grouped_columns(seed: int, noise_c: float, noise_b: float, groups: int = 2000, size: int = 10) -> dict[str, np.ndarray]:
+def grouped_columns(
+    seed: int, noise_c: float, noise_b: float, groups: int = 2000, size: int = 10
+) -> dict[str, np.ndarray]:
     rng = np.random.default_rng(seed)
     n = groups * size
     appeal = rng.normal(size=n)
@@ -248,7 +289,10 @@ def test_missing_inputs_are_skipped() -> None:
     cols = paired_sample(18)
     no_label = {k: v for k, v in cols.items() if k != "label"}
     assert judge(no_label, policy(AUC_NI)).outcome == "skipped"
-    assert judge(cols, policy('metric = "ndcg"\nrule = "non-inferiority"\nmargin = 0.01')).outcome == "skipped"
+    assert (
+        judge(cols, policy('metric = "ndcg"\nrule = "non-inferiority"\nmargin = 0.01')).outcome
+        == "skipped"
+    )
 
 
 def test_scores_that_are_not_probabilities_fail_closed() -> None:
@@ -265,7 +309,11 @@ def test_scores_that_are_not_probabilities_fail_closed() -> None:
         ('metric = "auc"\nrule = "non-inferiority"', "(top level)", "needs a margin"),
         ('metric = "gini"\nmargin = 0.1', "metric", "Input should be"),
         ('metric = "auc"\nmargin = 0.1\nconfidence = 1.5', "confidence", "less than 1"),
-        ('metric = "auc"\nmargin = 0.1\ncorrection = "bonferroni"', "correction", "Input should be"),
+        (
+            'metric = "auc"\nmargin = 0.1\ncorrection = "bonferroni"',
+            "correction",
+            "Input should be",
+        ),
         ('metric = "auc"\nmargin = 0.1\nthreshold = 0.5', "threshold", "unknown key"),
     ],
 )
@@ -286,10 +334,15 @@ def test_example_policy_parses_and_runs() -> None:
     base = Snapshot(
         model="shelf-ranker",
         key="b",
-        sample=Sample({k: v for k, v in cols.items() if k != "baseline_score"} | {"score": cols["baseline_score"]}),
+        sample=Sample(
+            {k: v for k, v in cols.items() if k != "baseline_score"}
+            | {"score": cols["baseline_score"]}
+        ),
     )
     verdict = evaluate(GateInput(cand, base, NOW), pol)
     assert verdict.error is None
-    assert all(f.statistic != "error" for f in verdict.findings), [f.message for f in verdict.findings]
+    assert all(f.statistic != "error" for f in verdict.findings), [
+        f.message for f in verdict.findings
+    ]
     for f in verdict.findings:
         assert f.to_dict()["details"] is not None

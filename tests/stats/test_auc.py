@@ -119,7 +119,9 @@ def test_fast_delong_equals_direct_structural_components(seed: int) -> None:
     np.testing.assert_allclose(fast.v10, v10, atol=1e-12)
     np.testing.assert_allclose(fast.v01, v01, atol=1e-12)
     # p-value: two-sided normal tail of diff / se.
-    assert result.pvalue == pytest.approx(2 * sps.norm.sf(abs(diff) / math.sqrt(variance)), rel=1e-9)
+    assert result.pvalue == pytest.approx(
+        2 * sps.norm.sf(abs(diff) / math.sqrt(variance)), rel=1e-9
+    )
 
 
 def test_unpaired_delong_adds_the_two_variances() -> None:
@@ -159,9 +161,9 @@ def test_paired_delong_interval_coverage_by_simulation() -> None:
 
 @settings(max_examples=60, deadline=None)
 @given(
-    st.lists(
-        st.tuples(st.booleans(), st.integers(-1000, 1000)), min_size=2, max_size=60
-    ).filter(lambda rows: 0 < sum(r[0] for r in rows) < len(rows))
+    st.lists(st.tuples(st.booleans(), st.integers(-1000, 1000)), min_size=2, max_size=60).filter(
+        lambda rows: 0 < sum(r[0] for r in rows) < len(rows)
+    )
 )
 def test_auc_properties(rows: list[tuple[bool, float]]) -> None:
     label = np.array([r[0] for r in rows], dtype=float)

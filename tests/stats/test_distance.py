@@ -34,10 +34,12 @@ def test_jensen_shannon_matches_scipy(shift: float) -> None:
     )
     # p-value: G-test of homogeneity; scipy chi2_contingency with the log-likelihood ratio
     edges = np.array(result.edges)
-    table = np.vstack([
-        np.bincount(np.searchsorted(edges, base, side="left"), minlength=edges.size + 1),
-        np.bincount(np.searchsorted(edges, cand, side="left"), minlength=edges.size + 1),
-    ])
+    table = np.vstack(
+        [
+            np.bincount(np.searchsorted(edges, base, side="left"), minlength=edges.size + 1),
+            np.bincount(np.searchsorted(edges, cand, side="left"), minlength=edges.size + 1),
+        ]
+    )
     g = sps.chi2_contingency(table, lambda_="log-likelihood", correction=False)
     assert result.pvalue == pytest.approx(g.pvalue, rel=1e-9, abs=1e-300)
 
@@ -55,7 +57,9 @@ def test_jensen_shannon_bounds() -> None:
 def test_wasserstein_matches_scipy(spread: str) -> None:
     base, cand = pair(2, 0.05)
     cand = np.round(cand, 2)  # ties
-    scale = np.std(base, ddof=1) if spread == "std" else np.subtract(*np.quantile(base, [0.75, 0.25]))
+    scale = (
+        np.std(base, ddof=1) if spread == "std" else np.subtract(*np.quantile(base, [0.75, 0.25]))
+    )
     # scipy.stats.wasserstein_distance divided by the stated spread
     expected = sps.wasserstein_distance(base, cand) / scale
     assert wasserstein(base, cand, spread=spread).statistic == pytest.approx(expected, rel=1e-10)  # type: ignore[arg-type]
@@ -70,7 +74,9 @@ def test_wasserstein_of_a_shift_is_the_shift() -> None:
         wasserstein(np.ones(10), base)
 
 
-@pytest.mark.parametrize(("seed", "shift", "decimals"), [(1, 0.0, None), (2, 0.1, None), (3, 0.15, 1), (4, 0.05, 2)])
+@pytest.mark.parametrize(
+    ("seed", "shift", "decimals"), [(1, 0.0, None), (2, 0.1, None), (3, 0.15, 1), (4, 0.05, 2)]
+)
 def test_anderson_ksamp_matches_scipy(seed: int, shift: float, decimals: int | None) -> None:
     rng = np.random.default_rng(seed)
     a, b = rng.normal(size=300), rng.normal(shift, 1.0, size=200)
@@ -113,7 +119,19 @@ def test_mean_and_quantile_shift() -> None:
     result = mean_shift(base, cand)
     assert result.statistic == pytest.approx(abs(cand.mean() - base.mean()) / np.std(base, ddof=1))
     # scipy.stats.ttest_ind (Welch) gives the p-value
-    assert result.pvalue == pytest.approx(sps.ttest_ind(cand, base, equal_var=False).pvalue, rel=1e-9)
+    assert result.pvalue == pytest.approx(
+        sps.ttest_ind(cand, base, equal_var=False).pvalue, rel=1e-9
+    )
     shift, per_level = quantile_shift(base, base + 0.1)
     assert shift.statistic == pytest.approx(0.1 / np.std(base, ddof=1), rel=1e-9)
-    assert set(per_level) == {"q0.01", "q0.05", "q0.1", "q0.25", "q0.5", "q0.75", "q0.9", "q0.95", "q0.99"}
+    assert set(per_level) == {
+        "q0.01",
+        "q0.05",
+        "q0.1",
+        "q0.25",
+        "q0.5",
+        "q0.75",
+        "q0.9",
+        "q0.95",
+        "q0.99",
+    }

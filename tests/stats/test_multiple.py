@@ -14,7 +14,9 @@ def test_against_statsmodels(seed: int) -> None:
     rng = np.random.default_rng(seed)
     p = np.concatenate([rng.random(12), rng.random(5) * 1e-3, [0.04, 0.04]])  # with a tie
     np.testing.assert_allclose(holm(p), multipletests(p, method="holm")[1], rtol=1e-12)
-    np.testing.assert_allclose(benjamini_hochberg(p), multipletests(p, method="fdr_bh")[1], rtol=1e-12)
+    np.testing.assert_allclose(
+        benjamini_hochberg(p), multipletests(p, method="fdr_bh")[1], rtol=1e-12
+    )
 
 
 def test_holm_by_hand() -> None:

@@ -15,8 +15,10 @@ from service.stats.quality import (
     calibration_ratio,
     equal_mass_bins,
     expected_calibration_error,
-    log_loss as our_log_loss,
     log_loss_terms,
+)
+from service.stats.quality import (
+    log_loss as our_log_loss,
 )
 
 
@@ -67,7 +69,9 @@ def test_calibration_ratio_by_hand() -> None:
 def test_ece_by_hand_on_two_bins() -> None:
     # Bin 1 (lowest two predictions 0.1, 0.2; outcomes 0, 1): |0.15 - 0.5| = 0.35.
     # Bin 2 (0.8, 0.9; outcomes 1, 1): |0.85 - 1| = 0.15. ECE = (2/4) 0.35 + (2/4) 0.15 = 0.25.
-    assert expected_calibration_error([0, 1, 1, 1], [0.1, 0.2, 0.8, 0.9], bins=2) == pytest.approx(0.25)
+    assert expected_calibration_error([0, 1, 1, 1], [0.1, 0.2, 0.8, 0.9], bins=2) == pytest.approx(
+        0.25
+    )
 
 
 def test_ece_against_direct_definition() -> None:

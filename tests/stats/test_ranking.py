@@ -9,7 +9,9 @@ from sklearn.metrics import ndcg_score
 from service.stats.ranking import GroupedLabels
 
 
-def grouped(seed: int, groups: int = 300, size: int = 12) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def grouped(
+    seed: int, groups: int = 300, size: int = 12
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     rng = np.random.default_rng(seed)
     label = rng.integers(0, 4, (groups, size)).astype(float)
     label[label < 2] = 0.0  # graded relevance 0, 2, 3
@@ -17,7 +19,9 @@ def grouped(seed: int, groups: int = 300, size: int = 12) -> tuple[np.ndarray, n
     return label, score, np.repeat(np.arange(groups), size)
 
 
-def flat(label: np.ndarray, score: np.ndarray, codes: np.ndarray, seed: int) -> tuple[GroupedLabels, np.ndarray]:
+def flat(
+    label: np.ndarray, score: np.ndarray, codes: np.ndarray, seed: int
+) -> tuple[GroupedLabels, np.ndarray]:
     perm = np.random.default_rng(seed).permutation(codes.size)  # rows need not be grouped
     prepared = GroupedLabels.of(codes[perm], int(codes.max()) + 1, label.ravel()[perm])
     return prepared, score.ravel()[perm]

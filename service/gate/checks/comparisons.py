@@ -182,8 +182,12 @@ def compare_paired(
                 boot.weighted_mean(diff), diff.size, resamples=opts.resamples, rng=rng
             )
             test = bootstrap_change(
-                estimate, reps, confidence=opts.confidence, method="bootstrap-paired-groups",
-                n_candidate=diff.size, n_baseline=diff.size,
+                estimate,
+                reps,
+                confidence=opts.confidence,
+                method="bootstrap-paired-groups",
+                n_candidate=diff.size,
+                n_baseline=diff.size,
             )
         else:
             test = paired_mean_change(diff, confidence=opts.confidence)
@@ -200,8 +204,12 @@ def compare_paired(
             else (candidate.order, baseline.order),
         )
         test = normal_change(
-            result.difference, result.se, confidence=opts.confidence, method=result.method,
-            n_candidate=n, n_baseline=n,
+            result.difference,
+            result.se,
+            confidence=opts.confidence,
+            method=result.method,
+            n_candidate=n,
+            n_baseline=n,
         )
         return Comparison(result.candidate, result.baseline, test, "rows")
     if metric in ("logloss", "brier") and not _needs_bootstrap(opts):
@@ -214,8 +222,12 @@ def compare_paired(
     estimate = _point(candidate, opts) - _point(baseline, opts)
     reps = boot.paired_replicates(stat, n, resamples=opts.resamples, rng=rng)
     test = bootstrap_change(
-        estimate, reps, confidence=opts.confidence, method="bootstrap-paired",
-        n_candidate=n, n_baseline=n,
+        estimate,
+        reps,
+        confidence=opts.confidence,
+        method="bootstrap-paired",
+        n_candidate=n,
+        n_baseline=n,
     )
     return Comparison(value_of(candidate, opts), value_of(baseline, opts), test, "rows")
 
@@ -233,14 +245,20 @@ def compare_unpaired(
         pb = _per_group(baseline, opts)
         if opts.method == "bootstrap":
             reps = boot.unpaired_replicates(
-                boot.weighted_mean(pc.values), pc.values.size,
-                boot.weighted_mean(pb.values), pb.values.size,
-                resamples=opts.resamples, rng=rng,
+                boot.weighted_mean(pc.values),
+                pc.values.size,
+                boot.weighted_mean(pb.values),
+                pb.values.size,
+                resamples=opts.resamples,
+                rng=rng,
             )
             test = bootstrap_change(
-                pc.mean - pb.mean, reps, confidence=opts.confidence,
+                pc.mean - pb.mean,
+                reps,
+                confidence=opts.confidence,
                 method="bootstrap-unpaired-groups",
-                n_candidate=pc.values.size, n_baseline=pb.values.size,
+                n_candidate=pc.values.size,
+                n_baseline=pb.values.size,
             )
         else:
             test = welch_mean_change(pc.values, pb.values, confidence=opts.confidence)
@@ -249,8 +267,12 @@ def compare_unpaired(
     if metric == "auc" and not _needs_bootstrap(opts):
         result = delong_unpaired(candidate.label, candidate.score, baseline.label, baseline.score)
         test = normal_change(
-            result.difference, result.se, confidence=opts.confidence, method=result.method,
-            n_candidate=nc, n_baseline=nb,
+            result.difference,
+            result.se,
+            confidence=opts.confidence,
+            method=result.method,
+            n_candidate=nc,
+            n_baseline=nb,
         )
         return Comparison(result.candidate, result.baseline, test, "rows")
     if metric in ("logloss", "brier") and not _needs_bootstrap(opts):
@@ -260,12 +282,20 @@ def compare_unpaired(
         test = welch_mean_change(tc, tb, confidence=opts.confidence)
         return Comparison(float(tc.mean()), float(tb.mean()), test, "rows")
     reps = boot.unpaired_replicates(
-        _row_statistic(candidate, opts), nc, _row_statistic(baseline, opts), nb,
-        resamples=opts.resamples, rng=rng,
+        _row_statistic(candidate, opts),
+        nc,
+        _row_statistic(baseline, opts),
+        nb,
+        resamples=opts.resamples,
+        rng=rng,
     )
     estimate = _point(candidate, opts) - _point(baseline, opts)
     test = bootstrap_change(
-        estimate, reps, confidence=opts.confidence, method="bootstrap-unpaired",
-        n_candidate=nc, n_baseline=nb,
+        estimate,
+        reps,
+        confidence=opts.confidence,
+        method="bootstrap-unpaired",
+        n_candidate=nc,
+        n_baseline=nb,
     )
     return Comparison(value_of(candidate, opts), value_of(baseline, opts), test, "rows")

@@ -23,7 +23,7 @@ import numpy as np
 from pydantic import Field, field_validator, model_validator
 
 from service.gate.checks.base import CheckContext, format_p, register, skipped
-from service.gate.checks.segments import CorrectedSegmentKeys, Unit, matching_rows, split, where
+from service.gate.checks.segments import ALL, CorrectedSegmentKeys, Unit, matching_rows, split
 from service.gate.types import Finding, Sample
 from service.stats import distance
 from service.stats import drift as drift_stats
@@ -42,7 +42,8 @@ class DriftConfig(CorrectedSegmentKeys):
     )
     bins: int = Field(10, ge=2, le=1000, description="Bins for binned statistics (psi, js).")
     spread: Literal["std", "iqr"] = Field(
-        "std", description="Baseline spread that normalises wasserstein, mean_shift, quantile_shift."
+        "std",
+        description="Baseline spread that normalises wasserstein, mean_shift, quantile_shift.",
     )
 
     @field_validator("statistic")
@@ -155,7 +156,9 @@ DRIFT_STATISTICS: dict[str, DriftStatistic] = {
 
 
 def finite_scores(values: np.ndarray) -> np.ndarray:
-    return values[np.isfinite(values)]
+    """The finite values; the array itself when all are (no copy)."""
+    ok = np.isfinite(values)
+    return values if bool(ok.all()) else values[ok]
 
 
 def _unit_scores(sample: Sample, unit: Unit, column: str, other: bool) -> np.ndarray:
@@ -194,10 +197,17 @@ def run_drift(config: DriftConfig, ctx: CheckContext) -> list[Finding]:
                     )
                 ]
             skipped_units.append(
-                {"segment": unit.label, "rows": int(cand.size), "baseline_rows": int(base.size), "outcome": "skipped"}
+                {
+                    "segment": unit.label,
+                    "rows": int(cand.size),
+                    "baseline_rows": int(base.size),
+                    "outcome": "skipped",
+                }
             )
             continue
-        results.append((unit, base, cand, DRIFT_STATISTICS[config.statistic].fn(base, cand, config)))
+        results.append(
+            (unit, base, cand, DRIFT_STATISTICS[config.statistic].fn(base, cand, config))
+        )
     has_p = DRIFT_STATISTICS[config.statistic].has_pvalue
     raw = [r[3].pvalue if r[3].pvalue is not None else 1.0 for r in results]
     adjusted = adjust(raw, config.correction) if has_p else [None] * len(results)
@@ -208,33 +218,35 @@ def run_drift(config: DriftConfig, ctx: CheckContext) -> list[Finding]:
         significant = config.alpha is None or (p_adj is not None and p_adj < config.alpha)
         if over and significant:
             over_units.append(unit.label)
-        table.append({
-            "segment": unit.label, "rows": int(cand.size), "baseline_rows": int(base.size),
-            "value": value.value, "pvalue": value.pvalue,
-            "p_adjusted": None if p_adj is None else float(p_adj),
-            "outcome": "breach" if over and significant else "ok",
-        })
+        table.append(
+            {
+                "segment": unit.label,
+                "rows": int(cand.size),
+                "baseline_rows": int(base.size),
+                "value": value.value,
+                "pvalue": value.pvalue,
+                "p_adjusted": None if p_adj is None else float(p_adj),
+                "outcome": "breach" if over and significant else "ok",
+            }
+        )
     unit, base, cand, whole = results[0]
     label = whole.label or config.statistic
     ptext = "" if whole.pvalue is None else f", {format_p(whole.pvalue)}"
-    limit_text = _limit_text(config)
-    head = f"score {label} {whole.value:.3g} vs {config.against}{ptext}"
-    if over_units:
-        message = f"{head}; exceeds {limit_text}{where(over_units)}"
-    elif config.max is not None and any(r["value"] > config.max for r in table):
-        message = f"{head}; above max {config.max:g} but not significant at {config.alpha:g} (adjusted)"
-    else:
-        message = f"{head}; within {limit_text}"
+    message = _message(config, label, whole, ptext, over_units, table)
     details: dict[str, Any] = {
         "mean_is": "baseline_value and candidate_value are mean scores",
         "alpha": config.alpha,
         **whole.details,
     }
     if len(layout.units) > 1 or layout.too_small or missing:
-        details.update({
-            "segments": table + skipped_units, "too_small": layout.too_small,
-            "missing_segment_columns": missing, "correction": config.correction if has_p else None,
-        })
+        details.update(
+            {
+                "segments": table + skipped_units,
+                "too_small": layout.too_small,
+                "missing_segment_columns": missing,
+                "correction": config.correction if has_p else None,
+            }
+        )
     return [
         Finding(
             check=config.name,
@@ -252,6 +264,33 @@ def run_drift(config: DriftConfig, ctx: CheckContext) -> list[Finding]:
             details=details,
         )
     ]
+
+
+def _message(
+    config: DriftConfig,
+    label: str,
+    whole: DriftValue,
+    ptext: str,
+    over_units: list[str],
+    table: list[dict[str, Any]],
+) -> str:
+    head = f"score {label} {whole.value:.3g} vs {config.against}"
+    if len(table) == 1:  # no segments: one sentence about all rows
+        if over_units:
+            return f"{head} exceeds {_limit_text(config)}{ptext}"
+        if config.max is not None and whole.value > config.max:
+            return (
+                f"{head} exceeds {config.max:g} but is not significant at {config.alpha:g}{ptext}"
+            )
+        return f"{head} within {_limit_text(config)}{ptext}"
+    if over_units:
+        worst = ", ".join(
+            f"{r['segment'] if r['segment'] != ALL else 'all rows'} {r['value']:.3g}"
+            for r in table
+            if r["outcome"] == "breach"
+        )
+        return f"{head}{ptext}; exceeds {_limit_text(config)} in {worst}"
+    return f"{head}{ptext}; within {_limit_text(config)} on all rows and in every segment"
 
 
 def _limit_text(config: DriftConfig) -> str:

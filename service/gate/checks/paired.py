@@ -23,11 +23,16 @@ import numpy as np
 from pydantic import Field, model_validator
 
 from service.gate.checks.base import CheckContext, register, skipped
-from service.gate.checks.segments import SegmentKeys, codes_of, split, where
+from service.gate.checks.memo import codes_of, finite_rows, order_of, take
+from service.gate.checks.segments import SegmentKeys, split, where
 from service.gate.types import Finding
 from service.stats import agreement
 
-LABELS = {"mean_abs_change": "mean absolute score change", "spearman": "Spearman rank correlation", "churn": "churn"}
+LABELS = {
+    "mean_abs_change": "mean absolute score change",
+    "spearman": "Spearman rank correlation",
+    "churn": "churn",
+}
 
 
 class PairedConfig(SegmentKeys):
@@ -35,11 +40,15 @@ class PairedConfig(SegmentKeys):
     statistic: Literal["mean_abs_change", "spearman", "churn"] = Field(
         description="mean_abs_change, spearman or churn."
     )
-    max: float | None = Field(None, ge=0, description="Largest allowed value (mean_abs_change, churn).")
+    max: float | None = Field(
+        None, ge=0, description="Largest allowed value (mean_abs_change, churn)."
+    )
     min: float | None = Field(None, ge=-1, le=1, description="Smallest allowed value (spearman).")
     threshold: float | None = Field(None, description="Churn: the decision is score >= threshold.")
     top_k: int | None = Field(None, ge=1, description="Churn: compare each group's top k rows.")
-    confidence: float = Field(0.95, ge=0.5, lt=1, description="Two-sided confidence of the interval.")
+    confidence: float = Field(
+        0.95, ge=0.5, lt=1, description="Two-sided confidence of the interval."
+    )
 
     @model_validator(mode="after")
     def _consistent(self) -> PairedConfig:
@@ -59,14 +68,22 @@ class PairedConfig(SegmentKeys):
 
 
 def _compute(
-    config: PairedConfig, cand: np.ndarray, base: np.ndarray, groups: np.ndarray | None
+    config: PairedConfig,
+    cand: np.ndarray,
+    base: np.ndarray,
+    groups: np.ndarray | None,
+    whole: bool,
 ) -> agreement.AgreementResult:
     if config.statistic == "mean_abs_change":
         return agreement.mean_abs_change(cand, base, confidence=config.confidence)
     if config.statistic == "spearman":
-        return agreement.spearman(cand, base, confidence=config.confidence)
+        # On all rows the sort orders are shared with other checks (see memo).
+        orders = (order_of(cand), order_of(base)) if whole else None
+        return agreement.spearman(cand, base, confidence=config.confidence, orders=orders)
     if config.threshold is not None:
-        return agreement.threshold_churn(cand, base, threshold=config.threshold, confidence=config.confidence)
+        return agreement.threshold_churn(
+            cand, base, threshold=config.threshold, confidence=config.confidence
+        )
     assert groups is not None and config.top_k is not None
     return agreement.top_k_churn(groups, cand, base, k=config.top_k, confidence=config.confidence)
 
@@ -86,16 +103,24 @@ def run_paired(config: PairedConfig, ctx: CheckContext) -> list[Finding]:
         label = f"churn at {config.threshold:g}"
     sample = ctx.candidate.sample
     if sample is None or sample.column("baseline_score") is None:
-        return [skipped(config, f"{label}: the sample has no baseline_score", statistic=config.statistic)]
+        return [
+            skipped(
+                config, f"{label}: the sample has no baseline_score", statistic=config.statistic
+            )
+        ]
     if config.top_k is not None and sample.column("group") is None:
-        return [skipped(config, f"{label}: the sample has no 'group' column", statistic=config.statistic)]
-    cand_all = sample.score
-    base_all = sample.columns["baseline_score"]
-    keep = np.flatnonzero(np.isfinite(cand_all) & np.isfinite(base_all))
-    cand_all, base_all = cand_all[keep], base_all[keep]
+        return [
+            skipped(
+                config, f"{label}: the sample has no 'group' column", statistic=config.statistic
+            )
+        ]
+    keep = finite_rows([sample.score, sample.columns["baseline_score"]])
+    rows_used = len(sample) if keep is None else keep.size
+    cand_all = take(sample.score, keep)
+    base_all = take(sample.columns["baseline_score"], keep)
     groups_all = None
     if config.top_k is not None:
-        groups_all = codes_of(sample.columns["group"], "group").codes[keep]
+        groups_all = take(codes_of(sample.columns["group"], "group").codes, keep)
     layout = split(sample, config.segments, config.min_segment_rows, keep=keep)
     rows: list[dict[str, Any]] = []
     over: list[str] = []
@@ -106,43 +131,67 @@ def run_paired(config: PairedConfig, ctx: CheckContext) -> list[Finding]:
         base = base_all if idx is None else base_all[idx]
         groups = groups_all if idx is None or groups_all is None else groups_all[idx]
         try:
-            result = _compute(config, cand, base, groups)
+            result = _compute(config, cand, base, groups, idx is None)
         except ValueError as exc:
             if idx is None:
                 raise
-            rows.append({"segment": unit.label, "rows": int(cand.size), "outcome": "skipped", "error": str(exc)})
+            rows.append(
+                {
+                    "segment": unit.label,
+                    "rows": int(cand.size),
+                    "outcome": "skipped",
+                    "error": str(exc),
+                }
+            )
             continue
         if whole is None:
             whole = result
         breach = _over(config, result.statistic)
         if breach:
             over.append(unit.label)
-        rows.append({
-            "segment": unit.label, "rows": int(cand.size), "value": result.statistic,
-            "interval": list(result.interval), "outcome": "breach" if breach else "ok",
-        })
+        rows.append(
+            {
+                "segment": unit.label,
+                "rows": int(cand.size),
+                "value": result.statistic,
+                "interval": list(result.interval),
+                "outcome": "breach" if breach else "ok",
+            }
+        )
     assert whole is not None
     limit = config.min if config.statistic == "spearman" else config.max
     assert limit is not None
     word = "below" if config.statistic == "spearman" else "above"
     low, high = whole.interval
-    head = f"{label} {whole.statistic:.4g} vs baseline on {whole.n} {'places' if config.top_k else 'rows'} ({config.confidence:.0%} CI [{low:.4g}, {high:.4g}])"
+    counted = "places" if config.top_k else "rows"
+    head = (
+        f"{label} {whole.statistic:.4g} vs baseline on {whole.n} {counted} "
+        f"({config.confidence:.0%} CI [{low:.4g}, {high:.4g}])"
+    )
     if over:
         message = f"{head}; {word} the limit {limit:g}{where(over)}"
     else:
         message = f"{head}; within the limit {limit:g}"
     return [
         Finding(
-            check=config.name, kind=config.kind, outcome="breach" if over else "ok",
-            statistic=config.statistic, value=whole.statistic, limit=limit,
-            interval=whole.interval, message=message, blocking=config.blocking,
+            check=config.name,
+            kind=config.kind,
+            outcome="breach" if over else "ok",
+            statistic=config.statistic,
+            value=whole.statistic,
+            limit=limit,
+            interval=whole.interval,
+            message=message,
+            blocking=config.blocking,
             against=config.against,
             details={
-                "rows_used": int(keep.size), "rows_dropped": int(len(sample) - keep.size),
+                "rows_used": rows_used,
+                "rows_dropped": len(sample) - rows_used,
                 "segments": rows if len(rows) > 1 or layout.too_small else [],
                 "too_small": layout.too_small,
                 "missing_segment_columns": layout.missing_columns,
-                "threshold": config.threshold, "top_k": config.top_k,
+                "threshold": config.threshold,
+                "top_k": config.top_k,
             },
         )
     ]

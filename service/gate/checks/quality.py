@@ -26,6 +26,7 @@ from __future__ import annotations
 
 import zlib
 from dataclasses import dataclass
+from functools import partial
 from typing import Any, Literal
 
 import numpy as np
@@ -44,20 +45,26 @@ from service.gate.checks.comparisons import (
     label_of,
     value_of,
 )
+from service.gate.checks.memo import codes_of, finite_rows, order_of, take
 from service.gate.checks.segments import (
     ALL,
     CorrectedSegmentKeys,
-    where,
     Unit,
-    codes_of,
     kept_codes,
     matching_rows,
     orders_by_value,
     split,
+    where,
 )
 from service.gate.types import Finding, Sample
-from service.stats.inference import BoundaryTest, against_boundary, minimum_detectable_effect, oriented_interval
+from service.stats.inference import (
+    BoundaryTest,
+    against_boundary,
+    minimum_detectable_effect,
+    oriented_interval,
+)
 from service.stats.multiple import adjust
+from service.stats.parallel import both
 
 
 class QualityConfig(CorrectedSegmentKeys):
@@ -74,15 +81,21 @@ class QualityConfig(CorrectedSegmentKeys):
         "non-inferiority", description="Decision rule on the change against the baseline."
     )
     margin: float | None = Field(
-        None, ge=0, description="Allowed worsening (non-inferiority, limit) or required gain (superiority)."
+        None,
+        ge=0,
+        description="Allowed worsening (non-inferiority, limit) or required gain (superiority).",
     )
-    confidence: float = Field(0.95, ge=0.5, lt=1, description="Two-sided confidence of the interval.")
+    confidence: float = Field(
+        0.95, ge=0.5, lt=1, description="Two-sided confidence of the interval."
+    )
     power: float = Field(0.8, gt=0, lt=1, description="Power for the minimum detectable effect.")
     max_gain: float | None = Field(
         None, gt=0, description="Leak guard: a gain above this is a breach."
     )
     floor: float | None = Field(None, description="Lowest acceptable candidate value (all rows).")
-    ceiling: float | None = Field(None, description="Highest acceptable candidate value (all rows).")
+    ceiling: float | None = Field(
+        None, description="Highest acceptable candidate value (all rows)."
+    )
     pairing: Literal["auto", "paired", "unpaired"] = Field(
         "auto", description="paired uses baseline_score on the same rows; auto prefers it."
     )
@@ -118,27 +131,26 @@ def _rng(ctx: CheckContext, config: QualityConfig, unit: Unit) -> np.random.Gene
     return np.random.default_rng([ctx.seed, zlib.crc32(f"{config.name}|{unit.label}".encode())])
 
 
-def _side(sample: Sample, rows: np.ndarray, score_column: str, config: QualityConfig) -> Side:
+def _side(
+    sample: Sample, rows: np.ndarray | None, score_column: str, config: QualityConfig
+) -> Side:
     groups = None
     n_groups = 0
     if is_ranking(config.metric):
         column = sample.column("group")
         assert column is not None
         codes = codes_of(column, "group")
-        groups, n_groups = codes.codes[rows], codes.n_values
+        groups, n_groups = take(codes.codes, rows), codes.n_values
     return Side(
-        label=sample.columns["label"][rows],
-        score=sample.columns[score_column][rows],
+        label=take(sample.columns["label"], rows),
+        score=take(sample.columns[score_column], rows),
         groups=groups,
         n_groups=n_groups,
     )
 
 
-def _finite_rows(sample: Sample, columns: tuple[str, ...]) -> np.ndarray:
-    ok = np.ones(len(sample), dtype=bool)
-    for name in columns:
-        ok &= np.isfinite(sample.columns[name])
-    return np.flatnonzero(ok)
+def _finite(sample: Sample, columns: tuple[str, ...]) -> np.ndarray | None:
+    return finite_rows([sample.columns[name] for name in columns])
 
 
 def _subset(side: Side, rows: np.ndarray | None, order: np.ndarray | None = None) -> Side:
@@ -162,59 +174,87 @@ def run_quality(config: QualityConfig, ctx: CheckContext) -> list[Finding]:
     name = label_of(config.metric, config.k)
     sample = ctx.candidate.sample
     if sample is None or sample.column("label") is None:
-        return [skipped(config, f"{name}: the candidate's sample has no labels", statistic=config.metric)]
+        return [
+            skipped(
+                config, f"{name}: the candidate's sample has no labels", statistic=config.metric
+            )
+        ]
     if is_ranking(config.metric) and sample.column("group") is None:
-        return [skipped(config, f"{name}: the sample has no 'group' column", statistic=config.metric)]
+        return [
+            skipped(config, f"{name}: the sample has no 'group' column", statistic=config.metric)
+        ]
     opts = Options(
-        metric=config.metric, k=config.k, gain=config.gain, bins=config.bins,
-        confidence=config.confidence, method=config.method, resamples=config.resamples,
+        metric=config.metric,
+        k=config.k,
+        gain=config.gain,
+        bins=config.bins,
+        confidence=config.confidence,
+        method=config.method,
+        resamples=config.resamples,
     )
     has_pairs = sample.column("baseline_score") is not None
     other = ctx.other.sample if ctx.other is not None else None
     paired = config.against == "baseline" and has_pairs and config.pairing != "unpaired"
     if config.pairing == "paired" and not paired:
-        return [skipped(config, f"{name}: pairing = 'paired' but the sample has no baseline_score", statistic=config.metric)]
+        return [
+            skipped(
+                config,
+                f"{name}: pairing = 'paired' but the sample has no baseline_score",
+                statistic=config.metric,
+            )
+        ]
     usable_other = (
         other is not None
         and other.column("label") is not None
         and (not is_ranking(config.metric) or other.column("group") is not None)
     )
     columns = ("score", "label", "baseline_score") if paired else ("score", "label")
-    keep = _finite_rows(sample, columns)
+    keep = _finite(sample, columns)
+    rows_used = len(sample) if keep is None else keep.size
     cand_all = _side(sample, keep, "score", config)
     if not paired and not usable_other:
         return _floor_only(config, ctx, name, cand_all, opts)
     layout = split(sample, config.segments, config.min_segment_rows, keep=keep)
     if paired:
-        base_all = Side(label=cand_all.label, score=sample.columns["baseline_score"][keep],
-                        groups=cand_all.groups, n_groups=cand_all.n_groups)
+        base_all = Side(
+            label=cand_all.label,
+            score=take(sample.columns["baseline_score"], keep),
+            groups=cand_all.groups,
+            n_groups=cand_all.n_groups,
+        )
         other_keep = None
     else:
         assert other is not None
-        other_keep = _finite_rows(other, ("score", "label"))
+        other_keep = _finite(other, ("score", "label"))
         base_all = _side(other, other_keep, "score", config)
     # Paired AUC: one sort per score, regrouped per segment value without sorting again.
     unit_orders: dict[str, tuple[list[np.ndarray], list[np.ndarray]]] = {}
     if paired and config.metric == "auc" and config.method == "auto":
-        order_c, order_b = np.argsort(cand_all.score), np.argsort(base_all.score)
+        order_c, order_b = both(
+            lambda: order_of(cand_all.score), lambda: order_of(base_all.score), rows=rows_used
+        )
         cand_all = Side(cand_all.label, cand_all.score, order=order_c)
         base_all = Side(base_all.label, base_all.score, order=order_b)
-        for column in {u.column for u in layout.units if u.column is not None}:
+        for column in sorted({u.column for u in layout.units if u.column is not None}):
             codes, n_values = kept_codes(sample, column, keep)
-            unit_orders[column] = (
-                orders_by_value(order_c, codes, n_values),
-                orders_by_value(order_b, codes, n_values),
+            by_c, by_b = both(
+                partial(orders_by_value, [order_c], codes, n_values),
+                partial(orders_by_value, [order_b], codes, n_values),
+                rows=rows_used,
             )
+            unit_orders[column] = (by_c[0], by_b[0])
     results: list[UnitResult] = []
     for unit in layout.units:
         orders = unit_orders.get(unit.column or "")
         cand = _subset(cand_all, unit.rows, None if orders is None else orders[0][unit.index or 0])
         try:
             if paired:
-                base = _subset(base_all, unit.rows, None if orders is None else orders[1][unit.index or 0])
+                base = _subset(
+                    base_all, unit.rows, None if orders is None else orders[1][unit.index or 0]
+                )
                 comparison = compare_paired(cand, base, opts, _rng(ctx, config, unit))
             else:
-                assert other is not None and other_keep is not None
+                assert other is not None
                 rows_other = matching_rows(other, unit, keep=other_keep)
                 base = _subset(base_all, rows_other)
                 comparison = compare_unpaired(cand, base, opts, _rng(ctx, config, unit))
@@ -226,22 +266,47 @@ def run_quality(config: QualityConfig, ctx: CheckContext) -> list[Finding]:
         sign = DIRECTION[config.metric]
         tests = against_boundary(comparison.test, _boundary(config), sign=sign)
         results.append(UnitResult(unit, cand.score.size, comparison, tests))
-    return [_finding(config, name, paired, results, layout.too_small, layout.missing_columns, keep.size, len(sample))]
+    return [
+        _finding(
+            config,
+            name,
+            paired,
+            results,
+            layout.too_small,
+            layout.missing_columns,
+            rows_used,
+            len(sample),
+        )
+    ]
 
 
-def _floor_only(config: QualityConfig, ctx: CheckContext, name: str, cand: Side, opts: Options) -> list[Finding]:
+def _floor_only(
+    config: QualityConfig, ctx: CheckContext, name: str, cand: Side, opts: Options
+) -> list[Finding]:
     """No baseline to compare with: judge the candidate's own value against floor/ceiling."""
     if config.floor is None and config.ceiling is None:
-        return [skipped(config, f"{name}: no baseline_score and no {config.against} sample with labels to compare with", statistic=config.metric)]
+        return [
+            skipped(
+                config,
+                f"{name}: no baseline_score and no {config.against} sample with labels "
+                "to compare with",
+                statistic=config.metric,
+            )
+        ]
     value = value_of(cand, opts)
     problems = _bounds(config, name, value)
     return [
         Finding(
-            check=config.name, kind=config.kind, outcome="breach" if problems else "ok",
-            statistic=config.metric, candidate_value=value,
+            check=config.name,
+            kind=config.kind,
+            outcome="breach" if problems else "ok",
+            statistic=config.metric,
+            candidate_value=value,
             limit=config.floor if config.floor is not None else config.ceiling,
-            message="; ".join(problems) or f"{name} {value:.4g} within bounds (nothing to compare with)",
-            blocking=config.blocking, against=config.against,
+            message="; ".join(problems)
+            or f"{name} {value:.4g} within bounds (nothing to compare with)",
+            blocking=config.blocking,
+            against=config.against,
             details={"rows": int(cand.score.size), "mode": "candidate only"},
         )
     ]
@@ -286,24 +351,35 @@ def _finding(
     table: list[dict[str, Any]] = []
     verdicts: dict[str, str] = {}
     for r, pa, pb in zip(ran, p_above, p_below, strict=True):
-        assert r.comparison is not None
+        assert r.comparison is not None and r.tests is not None
         c = r.comparison
         low, high = oriented_interval(c.test, sign)
         gain = sign * c.test.estimate
         verdict = _outcome(config, gain, float(pa), float(pb))
         verdicts[r.unit.label] = verdict
-        table.append({
-            "segment": r.unit.label, "rows": r.rows, "n": c.test.n_candidate, "counts": c.units,
-            "candidate": c.candidate_value, "baseline": c.baseline_value,
-            "change": c.test.estimate, "interval": list(c.test.interval),
-            "pvalue": r.tests.p_above if config.rule != "limit" else c.test.pvalue,  # type: ignore[union-attr]
-            "p_worse": r.tests.p_below, "p_worse_adjusted": float(pb),  # type: ignore[union-attr]
-            "p_adjusted": float(pa) if config.rule != "limit" else None,
-            "gain_interval": [low, high], "outcome": verdict if verdict != "leak" else "breach",
-        })
+        table.append(
+            {
+                "segment": r.unit.label,
+                "rows": r.rows,
+                "n": c.test.n_candidate,
+                "counts": c.units,
+                "candidate": c.candidate_value,
+                "baseline": c.baseline_value,
+                "change": c.test.estimate,
+                "interval": list(c.test.interval),
+                "pvalue": r.tests.p_above if config.rule != "limit" else c.test.pvalue,
+                "p_worse": r.tests.p_below,
+                "p_worse_adjusted": float(pb),
+                "p_adjusted": float(pa) if config.rule != "limit" else None,
+                "gain_interval": [low, high],
+                "outcome": verdict if verdict != "leak" else "breach",
+            }
+        )
     for r in results:
         if r.comparison is None:
-            table.append({"segment": r.unit.label, "rows": r.rows, "outcome": "skipped", "error": r.error})
+            table.append(
+                {"segment": r.unit.label, "rows": r.rows, "outcome": "skipped", "error": r.error}
+            )
     whole = ran[0]
     assert whole.unit.label == ALL and whole.comparison is not None and whole.tests is not None
     test = whole.comparison.test
@@ -363,13 +439,20 @@ def _finding(
     if config.max_gain is not None:
         details["max_gain"] = config.max_gain
     return Finding(
-        check=config.name, kind=config.kind, outcome=outcome,  # type: ignore[arg-type]
-        statistic=f"{config.metric} change", value=test.estimate, limit=limit,
+        check=config.name,
+        kind=config.kind,
+        outcome=outcome,  # type: ignore[arg-type]
+        statistic=f"{config.metric} change",
+        value=test.estimate,
+        limit=limit,
         pvalue=whole.tests.p_above if config.rule != "limit" else test.pvalue,
         baseline_value=whole.comparison.baseline_value,
         candidate_value=whole.comparison.candidate_value,
-        interval=test.interval, message=f"{head}; {tail}",
-        blocking=config.blocking, against=config.against, details=details,
+        interval=test.interval,
+        message=f"{head}; {tail}",
+        blocking=config.blocking,
+        against=config.against,
+        details=details,
     )
 
 

@@ -15,7 +15,6 @@ References
 
 from __future__ import annotations
 
-import weakref
 from dataclasses import dataclass
 from typing import Literal
 
@@ -23,8 +22,8 @@ import numpy as np
 from pydantic import Field
 
 from service.gate.checks.base import CheckConfig
+from service.gate.checks.memo import codes_of
 from service.gate.types import SEGMENT_PREFIX, Sample
-from service.stats.grouping import Codes, factorize
 
 ALL = "(all)"
 
@@ -69,24 +68,6 @@ class Unit:
     rows: np.ndarray | None
 
 
-_CODES: dict[int, tuple[weakref.ref[np.ndarray], Codes]] = {}
-
-
-def codes_of(column: np.ndarray, name: str) -> Codes:
-    """Codes of a text column, remembered while the array lives (checks share a sample)."""
-    key = id(column)
-    hit = _CODES.get(key)
-    if hit is not None and hit[0]() is column:
-        return hit[1]
-    codes = factorize(column, name)
-
-    def forget(_: object, key: int = key) -> None:
-        _CODES.pop(key, None)
-
-    _CODES[key] = (weakref.ref(column, forget), codes)
-    return codes
-
-
 def segment_column(sample: Sample, name: str) -> np.ndarray | None:
     return sample.column(SEGMENT_PREFIX + name)
 
@@ -100,7 +81,9 @@ class Split:
     missing_columns: list[str]
 
 
-def split(sample: Sample, names: list[str], min_rows: int, *, keep: np.ndarray | None = None) -> Split:
+def split(
+    sample: Sample, names: list[str], min_rows: int, *, keep: np.ndarray | None = None
+) -> Split:
     """Units for *sample*: ``(all)`` first, then each value of each named segment column.
 
     *keep* (row indices) restricts every unit to those rows (e.g. rows with finite inputs);
@@ -126,7 +109,9 @@ def split(sample: Sample, names: list[str], min_rows: int, *, keep: np.ndarray |
     return Split(units=units, too_small=too_small, missing_columns=missing)
 
 
-def matching_rows(sample: Sample, unit: Unit, *, keep: np.ndarray | None = None) -> np.ndarray | None:
+def matching_rows(
+    sample: Sample, unit: Unit, *, keep: np.ndarray | None = None
+) -> np.ndarray | None:
     """Rows of another sample (the baseline's own) in the same segment as *unit*.
 
     None means every row (unit ``(all)``); raises ValueError when the column is absent.
@@ -152,11 +137,14 @@ def kept_codes(sample: Sample, name: str, keep: np.ndarray | None) -> tuple[np.n
     return (codes.codes if keep is None else codes.codes[keep]), codes.n_values
 
 
-def orders_by_value(order: np.ndarray, codes: np.ndarray, n_values: int) -> list[np.ndarray]:
-    """Per value v, ``argsort(values[rows_v])`` from ``order = argsort(values)``, no new sort.
+def orders_by_value(
+    orders: list[np.ndarray], codes: np.ndarray, n_values: int
+) -> list[list[np.ndarray]]:
+    """Per order and per value v: ``argsort(values[rows_v])`` from ``argsort(values)``.
 
-    ``rows_v`` are the rows with code v in ascending order (as in :func:`split`). Two stable
-    sorts of small integer codes (radix sorts, linear time) regroup the full order by value.
+    ``rows_v`` are the rows with code v in ascending order (as in :func:`split`). Stable sorts
+    of small integer codes (radix sorts, linear time) regroup each full order by value, so no
+    score is sorted again.
     """
     n = codes.size
     small = codes.astype(np.int32 if n_values > 32_000 else np.int16)
@@ -165,5 +153,8 @@ def orders_by_value(order: np.ndarray, codes: np.ndarray, n_values: int) -> list
     rows_by_value = np.argsort(small, kind="stable")
     local = np.empty(n, dtype=np.int64)
     local[rows_by_value] = np.arange(n, dtype=np.int64) - np.repeat(starts, counts)
-    grouped = order[np.argsort(small[order], kind="stable")]
-    return [local[grouped[starts[v] : starts[v] + counts[v]]] for v in range(n_values)]
+    result = []
+    for order in orders:
+        grouped = order[np.argsort(small[order], kind="stable")]
+        result.append([local[grouped[starts[v] : starts[v] + counts[v]]] for v in range(n_values)])
+    return result
