@@ -124,32 +124,67 @@ class _TieCounts:
         )
 
 
-def _row_placements(
-    positive: np.ndarray, score: np.ndarray, order: np.ndarray, n1: int, n0: int
-) -> np.ndarray:
-    """Placement value of every row, in row order: V10 for positives, V01 for negatives."""
-    n = score.size
+def has_ties(score: np.ndarray, order: np.ndarray) -> bool:
+    """Whether two scores are equal (from ``order = argsort(score)``)."""
     s = score[order]
-    pos_sorted = positive[order]
-    per_row = np.empty(n, dtype=np.float64)
-    if n < 2 or np.all(s[1:] != s[:-1]):
+    return bool(np.any(s[1:] == s[:-1]))
+
+
+def sorted_placements(
+    pos_sorted: np.ndarray, n1: int, n0: int, s_sorted: np.ndarray | None = None
+) -> np.ndarray:
+    """Placement values in sorted order: V10 at positives, V01 at negatives (Sun & Xu [2]).
+
+    *pos_sorted* are the classes of the rows in ascending score order; *s_sorted* their scores
+    when ties are possible (None: no two scores are equal).
+    """
+    n = pos_sorted.size
+    if s_sorted is None or n < 2:
         # No ties: a positive at sorted place i has i - (positives before) negatives below; a
         # negative has n1 - (positives before) positives above.
         before = np.cumsum(pos_sorted, dtype=np.int64)
         before -= pos_sorted
         below = np.arange(n, dtype=np.int64) - before
-        values = np.where(pos_sorted, below * (1.0 / n0), (n1 - before) * (1.0 / n1))
-        per_row[order] = values
-        return per_row
-    ties = _TieCounts.of(positive, score, order)
+        return np.where(pos_sorted, below * (1.0 / n0), (n1 - before) * (1.0 / n1))
+    new = np.empty(n, dtype=bool)
+    new[0] = True
+    np.not_equal(s_sorted[1:], s_sorted[:-1], out=new[1:])
+    starts = np.flatnonzero(new)
+    ends = np.append(starts[1:], n)
+    cum = np.concatenate(([0], np.cumsum(pos_sorted, dtype=np.int64)))
+    pos_before = cum[starts]
+    pos_in = cum[ends] - pos_before
+    neg_before = starts - pos_before
+    neg_in = (ends - starts) - pos_in
     # Positive rows: negatives below plus half the tied negatives; negative rows: positives above
     # plus half the tied positives (Sun & Xu [2], eq. 9-10, in count form).
-    below_t = ties.neg_before + 0.5 * ties.neg_in
-    above_t = (n1 - ties.pos_before - ties.pos_in) + 0.5 * ties.pos_in
-    if ties.group is not None:
-        below_t = below_t[ties.group]
-        above_t = above_t[ties.group]
-    per_row[order] = np.where(ties.pos_sorted, below_t / n0, above_t / n1)
+    below_t = (neg_before + 0.5 * neg_in) / n0
+    above_t = ((n1 - pos_before - pos_in) + 0.5 * pos_in) / n1
+    if starts.size < n:
+        group = np.cumsum(new) - 1
+        below_t, above_t = below_t[group], above_t[group]
+    return np.where(pos_sorted, below_t, above_t)
+
+
+def _row_placements(
+    positive: np.ndarray,
+    score: np.ndarray,
+    order: np.ndarray,
+    n1: int,
+    n0: int,
+    ties: bool | None = None,
+) -> np.ndarray:
+    """Placement value of every row, in row order: V10 for positives, V01 for negatives.
+
+    *ties* False promises that no two scores are equal (skips the check); None: check.
+    """
+    s_sorted = None
+    if ties is None or ties:
+        s_sorted = score[order]
+        if ties is None and not np.any(s_sorted[1:] == s_sorted[:-1]):
+            s_sorted = None
+    per_row = np.empty(score.size, dtype=np.float64)
+    per_row[order] = sorted_placements(positive[order], n1, n0, s_sorted)
     return per_row
 
 
@@ -238,6 +273,7 @@ def delong_paired(
     *,
     positive: np.ndarray | None = None,
     orders: tuple[np.ndarray, np.ndarray] | None = None,
+    ties: tuple[bool, bool] | None = None,
 ) -> AUCChange:
     """DeLong's test for two correlated ROC curves (two scores of the same rows) [1], [2].
 
@@ -251,6 +287,9 @@ def delong_paired(
         The binarised labels when the caller has them (then *label* is ignored).
     orders : (ndarray, ndarray), optional
         ``argsort`` of candidate and baseline when the caller has them.
+    ties : (bool, bool), optional
+        Whether each score has ties, when the caller knows (False skips a check; a subset of
+        rows of a score without ties has none either).
 
     Returns
     -------
@@ -275,10 +314,20 @@ def delong_paired(
     # The two scores' halves are independent: on two cores they run side by side.
     row_c, row_b = both(
         lambda: _row_placements(
-            pos, cand, np.argsort(cand) if orders is None else orders[0], n1, n0
+            pos,
+            cand,
+            np.argsort(cand) if orders is None else orders[0],
+            n1,
+            n0,
+            None if ties is None else ties[0],
         ),
         lambda: _row_placements(
-            pos, base, np.argsort(base) if orders is None else orders[1], n1, n0
+            pos,
+            base,
+            np.argsort(base) if orders is None else orders[1],
+            n1,
+            n0,
+            None if ties is None else ties[1],
         ),
         rows=cand.size,
     )

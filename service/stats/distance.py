@@ -34,7 +34,7 @@ from typing import Literal
 import numpy as np
 from scipy import stats as sps
 
-from service.stats.drift import quantile_edges
+from service.stats.drift import binned_counts, quantile_edges
 from service.stats.validation import finite_1d
 
 Spread = Literal["std", "iqr"]
@@ -60,10 +60,10 @@ class BinnedDistance:
 def _shared_bins(
     base: np.ndarray, cand: np.ndarray, bins: int
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    base = np.sort(base)
     edges = quantile_edges(base, bins)
-    n_bins = edges.size + 1
-    base_counts = np.bincount(np.searchsorted(edges, base, side="left"), minlength=n_bins)
-    cand_counts = np.bincount(np.searchsorted(edges, cand, side="left"), minlength=n_bins)
+    base_counts = binned_counts(base, edges, presorted=True)
+    cand_counts = binned_counts(cand, edges)
     return edges, base_counts.astype(np.float64), cand_counts.astype(np.float64)
 
 

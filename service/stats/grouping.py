@@ -41,18 +41,23 @@ def _sorted_codes(raw_codes: np.ndarray, raw_values: list[str]) -> Codes:
 
 
 def _by_equality(column: np.ndarray) -> Codes | None:
-    n = column.size
-    codes = np.full(n, -1, dtype=np.int64)
-    values: list[str] = []
-    unassigned = 0
-    while unassigned < n and len(values) < FEW_VALUES:
-        value = column[unassigned]
-        codes[column == value] = len(values)
+    """Codes by one vectorised comparison per distinct value, each on the rows still open."""
+    first = column[0]
+    same = column == first
+    rest = np.flatnonzero(~same)
+    if rest.size == 0:
+        return Codes(codes=np.zeros(column.size, dtype=np.int64), values=(first,))
+    codes = (~same).astype(np.int64)  # 0 for the first value, 1 for every other row for now
+    values: list[str] = [first]
+    while len(values) < FEW_VALUES:
+        value = column[rest[0]]
+        same = column[rest] == value
+        if len(values) > 1:
+            codes[rest[same]] = len(values)
         values.append(value)
-        rest = np.flatnonzero(codes[unassigned:] < 0)
+        rest = rest[~same]
         if rest.size == 0:
             return _sorted_codes(codes, values)
-        unassigned += int(rest[0])
     return None
 
 

@@ -9,6 +9,7 @@ do not depend on the thread schedule.
 from __future__ import annotations
 
 import os
+import threading
 from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
 from typing import TypeVar
@@ -20,18 +21,20 @@ B = TypeVar("B")
 MIN_ROWS = 200_000
 
 _POOL: ThreadPoolExecutor | None = None
+_PREFIX = "tidegate-stats"
 
 
 def _pool() -> ThreadPoolExecutor:
     global _POOL
     if _POOL is None:
-        _POOL = ThreadPoolExecutor(max_workers=1, thread_name_prefix="tidegate-stats")
+        _POOL = ThreadPoolExecutor(max_workers=1, thread_name_prefix=_PREFIX)
     return _POOL
 
 
 def both(first: Callable[[], A], second: Callable[[], B], *, rows: int) -> tuple[A, B]:
     """``(first(), second())``; in parallel when *rows* is large and there is a second core."""
-    if rows < MIN_ROWS or (os.cpu_count() or 1) < 2:
+    nested = threading.current_thread().name.startswith(_PREFIX)  # never wait on ourselves
+    if rows < MIN_ROWS or nested or (os.cpu_count() or 1) < 2:
         return first(), second()
     future = _pool().submit(first)
     other = second()

@@ -85,6 +85,8 @@ class Side:
     n_groups: int = 0
     #: ``argsort(score)`` when known (saves a sort per segment).
     order: np.ndarray | None = None
+    #: Whether the score has ties, when known (False: none on all rows, so none in a subset).
+    ties: bool | None = None
 
 
 @dataclass(frozen=True)
@@ -202,6 +204,9 @@ def compare_paired(
             orders=None
             if candidate.order is None or baseline.order is None
             else (candidate.order, baseline.order),
+            ties=None
+            if candidate.ties is None or baseline.ties is None
+            else (candidate.ties, baseline.ties),
         )
         test = normal_change(
             result.difference,

@@ -26,7 +26,6 @@ from __future__ import annotations
 
 import zlib
 from dataclasses import dataclass
-from functools import partial
 from typing import Any, Literal
 
 import numpy as np
@@ -52,15 +51,17 @@ from service.gate.checks.segments import (
     Unit,
     kept_codes,
     matching_rows,
-    orders_by_value,
     split,
     where,
 )
 from service.gate.types import Finding, Sample
+from service.stats.auc import AUCChange, delong_paired, has_ties
+from service.stats.delong_segments import delong_paired_by_value
 from service.stats.inference import (
     BoundaryTest,
     against_boundary,
     minimum_detectable_effect,
+    normal_change,
     oriented_interval,
 )
 from service.stats.multiple import adjust
@@ -153,7 +154,7 @@ def _finite(sample: Sample, columns: tuple[str, ...]) -> np.ndarray | None:
     return finite_rows([sample.columns[name] for name in columns])
 
 
-def _subset(side: Side, rows: np.ndarray | None, order: np.ndarray | None = None) -> Side:
+def _subset(side: Side, rows: np.ndarray | None) -> Side:
     if rows is None:
         return side
     return Side(
@@ -161,7 +162,6 @@ def _subset(side: Side, rows: np.ndarray | None, order: np.ndarray | None = None
         score=side.score[rows],
         groups=None if side.groups is None else side.groups[rows],
         n_groups=side.n_groups,
-        order=order,
     )
 
 
@@ -227,45 +227,37 @@ def run_quality(config: QualityConfig, ctx: CheckContext) -> list[Finding]:
         assert other is not None
         other_keep = _finite(other, ("score", "label"))
         base_all = _side(other, other_keep, "score", config)
-    # Paired AUC: one sort per score, regrouped per segment value without sorting again.
-    unit_orders: dict[str, tuple[list[np.ndarray], list[np.ndarray]]] = {}
+    # Paired AUC: one sort per score serves all rows and every segment value.
+    fast: dict[str, Comparison | str] = {}
     if paired and config.metric == "auc" and config.method == "auto":
-        order_c, order_b = both(
-            lambda: order_of(cand_all.score), lambda: order_of(base_all.score), rows=rows_used
-        )
-        cand_all = Side(cand_all.label, cand_all.score, order=order_c)
-        base_all = Side(base_all.label, base_all.score, order=order_b)
-        for column in sorted({u.column for u in layout.units if u.column is not None}):
-            codes, n_values = kept_codes(sample, column, keep)
-            by_c, by_b = both(
-                partial(orders_by_value, [order_c], codes, n_values),
-                partial(orders_by_value, [order_b], codes, n_values),
-                rows=rows_used,
-            )
-            unit_orders[column] = (by_c[0], by_b[0])
+        fast = _paired_auc_units(sample, cand_all, base_all, layout.units, keep, opts, rows_used)
     results: list[UnitResult] = []
     for unit in layout.units:
-        orders = unit_orders.get(unit.column or "")
-        cand = _subset(cand_all, unit.rows, None if orders is None else orders[0][unit.index or 0])
+        rows = rows_used if unit.rows is None else unit.rows.size
         try:
-            if paired:
-                base = _subset(
-                    base_all, unit.rows, None if orders is None else orders[1][unit.index or 0]
-                )
+            if unit.label in fast:
+                known = fast[unit.label]
+                if isinstance(known, str):
+                    raise ValueError(known)
+                comparison = known
+            elif paired:
+                cand = _subset(cand_all, unit.rows)
+                base = _subset(base_all, unit.rows)
                 comparison = compare_paired(cand, base, opts, _rng(ctx, config, unit))
             else:
                 assert other is not None
+                cand = _subset(cand_all, unit.rows)
                 rows_other = matching_rows(other, unit, keep=other_keep)
                 base = _subset(base_all, rows_other)
                 comparison = compare_unpaired(cand, base, opts, _rng(ctx, config, unit))
         except ValueError as exc:
             if unit.label == ALL:
                 raise
-            results.append(UnitResult(unit, cand.score.size, None, None, error=str(exc)))
+            results.append(UnitResult(unit, rows, None, None, error=str(exc)))
             continue
         sign = DIRECTION[config.metric]
         tests = against_boundary(comparison.test, _boundary(config), sign=sign)
-        results.append(UnitResult(unit, cand.score.size, comparison, tests))
+        results.append(UnitResult(unit, rows, comparison, tests))
     return [
         _finding(
             config,
@@ -278,6 +270,50 @@ def run_quality(config: QualityConfig, ctx: CheckContext) -> list[Finding]:
             len(sample),
         )
     ]
+
+
+def _paired_auc_units(
+    sample: Sample,
+    cand: Side,
+    base: Side,
+    units: list[Unit],
+    keep: np.ndarray | None,
+    opts: Options,
+    rows: int,
+) -> dict[str, Comparison | str]:
+    """Paired DeLong for every unit from one sort per score (see delong_segments)."""
+    order_c, order_b = both(lambda: order_of(cand.score), lambda: order_of(base.score), rows=rows)
+    ties = (has_ties(cand.score, order_c), has_ties(base.score, order_b))
+    positive = cand.label > 0
+    found: dict[str, AUCChange | str] = {
+        ALL: delong_paired(
+            None, cand.score, base.score, positive=positive, orders=(order_c, order_b), ties=ties
+        )
+    }
+    for column in sorted({u.column for u in units if u.column is not None}):
+        codes, n_values = kept_codes(sample, column, keep)
+        per_value = delong_paired_by_value(
+            positive, cand.score, base.score, (order_c, order_b), codes, n_values, ties=ties
+        )
+        for unit in units:
+            if unit.column == column and unit.index is not None:
+                found[unit.label] = per_value[unit.index]
+    out: dict[str, Comparison | str] = {}
+    for label, result in found.items():
+        if isinstance(result, str):
+            out[label] = result
+            continue
+        n = result.n_positive + result.n_negative
+        test = normal_change(
+            result.difference,
+            result.se,
+            confidence=opts.confidence,
+            method=result.method,
+            n_candidate=n,
+            n_baseline=n,
+        )
+        out[label] = Comparison(result.candidate, result.baseline, test, "rows")
+    return out
 
 
 def _floor_only(

@@ -135,26 +135,3 @@ def kept_codes(sample: Sample, name: str, keep: np.ndarray | None) -> tuple[np.n
         raise ValueError(f"the sample has no column 'segment.{name}'")
     codes = codes_of(column, SEGMENT_PREFIX + name)
     return (codes.codes if keep is None else codes.codes[keep]), codes.n_values
-
-
-def orders_by_value(
-    orders: list[np.ndarray], codes: np.ndarray, n_values: int
-) -> list[list[np.ndarray]]:
-    """Per order and per value v: ``argsort(values[rows_v])`` from ``argsort(values)``.
-
-    ``rows_v`` are the rows with code v in ascending order (as in :func:`split`). Stable sorts
-    of small integer codes (radix sorts, linear time) regroup each full order by value, so no
-    score is sorted again.
-    """
-    n = codes.size
-    small = codes.astype(np.int32 if n_values > 32_000 else np.int16)
-    counts = np.bincount(small, minlength=n_values)
-    starts = np.cumsum(counts) - counts
-    rows_by_value = np.argsort(small, kind="stable")
-    local = np.empty(n, dtype=np.int64)
-    local[rows_by_value] = np.arange(n, dtype=np.int64) - np.repeat(starts, counts)
-    result = []
-    for order in orders:
-        grouped = order[np.argsort(small[order], kind="stable")]
-        result.append([local[grouped[starts[v] : starts[v] + counts[v]]] for v in range(n_values)])
-    return result
