@@ -17,8 +17,10 @@ Decision rules, on the *gain* (the change oriented so that positive is better; s
   below it; otherwise inconclusive.
 - ``limit``: breach when the point estimate of the gain is below ``-margin``; no inconclusive.
 
-With segments the bounds are read from p-values adjusted over the family of units (see
-:mod:`service.gate.checks.segments`). ``max_gain`` (leak guard): a point gain above it is a
+With segments, a unit is a breach when its p-value of "worse than the boundary", adjusted over
+the family of units (see :mod:`service.gate.checks.segments`), is below ``(1 - confidence) / 2``;
+it is ok when its own lower bound clears the boundary (every unit must: an intersection-union
+test, which needs no adjustment; Berger 1982); otherwise inconclusive. ``max_gain`` (leak guard): a point gain above it is a
 breach. ``floor``/``ceiling`` bound the candidate's own value on all rows.
 """
 
@@ -382,7 +384,10 @@ def _finding(
 ) -> Finding:
     sign = DIRECTION[config.metric]
     ran = [r for r in results if r.comparison is not None and r.tests is not None]
-    p_above = adjust([r.tests.p_above for r in ran], config.correction)  # type: ignore[union-attr]
+    # Claims of a regression are adjusted over the family (they hold the push); "ok" needs every
+    # unit shown within the margin, an intersection-union test that needs no adjustment
+    # (Berger 1982), so the raw p-values decide it.
+    p_above = [r.tests.p_above for r in ran]  # type: ignore[union-attr]
     p_below = adjust([r.tests.p_below for r in ran], config.correction)  # type: ignore[union-attr]
     table: list[dict[str, Any]] = []
     verdicts: dict[str, str] = {}
@@ -406,7 +411,6 @@ def _finding(
                 "pvalue": r.tests.p_above if config.rule != "limit" else c.test.pvalue,
                 "p_worse": r.tests.p_below,
                 "p_worse_adjusted": float(pb),
-                "p_adjusted": float(pa) if config.rule != "limit" else None,
                 "gain_interval": [low, high],
                 "outcome": verdict if verdict != "leak" else "breach",
             }

@@ -5,7 +5,8 @@ A check that lists ``segments = ["device", "reader_tenure"]`` is run once on all
 each column on its own (no cross product). Values with fewer than ``min_segment_rows`` rows are
 reported as too small and left out. The p-values of the units that ran form one family and are
 adjusted together (Holm by default, Benjamini–Hochberg on request), so adding segments does not
-raise the rate of false holds [1], [2].
+raise the rate of false holds [1], [2]: for ``drift`` the p-values of a shift, for ``quality``
+those of "worse than the boundary".
 
 References
 ----------
