@@ -20,8 +20,10 @@ Decision rules, on the *gain* (the change oriented so that positive is better; s
 With segments, a unit is a breach when its p-value of "worse than the boundary", adjusted over
 the family of units (see :mod:`service.gate.checks.segments`), is below ``(1 - confidence) / 2``;
 it is ok when its own lower bound clears the boundary (every unit must: an intersection-union
-test, which needs no adjustment; Berger 1982); otherwise inconclusive. ``max_gain`` (leak guard): a point gain above it is a
-breach. ``floor``/``ceiling`` bound the candidate's own value on all rows.
+test, which needs no adjustment; Berger 1982); otherwise inconclusive.
+
+``max_gain`` (leak guard): a point gain above it is a breach. ``floor``/``ceiling`` bound the
+candidate's own value on all rows.
 """
 
 from __future__ import annotations
