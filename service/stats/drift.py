@@ -48,6 +48,10 @@ class KSResult:
     n_candidate: int
 
 
+#: Above this effective sample size the KS p-value uses Kolmogorov's limiting distribution.
+KS_LIMIT_ABOVE = 100_000
+
+
 def quantile_edges(baseline: np.ndarray, bins: int) -> np.ndarray:
     """Inner bin edges at the baseline's quantiles ``k / bins``, duplicates removed.
 
@@ -171,8 +175,10 @@ def ks_2samp(baseline: object, candidate: object) -> KSResult:
     -------
     KSResult
         ``statistic`` is ``D = sup |F_n(x) - G_m(x)|``; ``pvalue`` is the survival function of
-        the two-sided one-sample KS distribution at ``D`` with ``round(n m / (n + m))``
-        observations, the asymptotic method scipy uses (``scipy.stats.ks_2samp(method='asymp')``).
+        the two-sided one-sample KS distribution at ``D`` with ``en = round(n m / (n + m))``
+        observations, the asymptotic method scipy uses (``scipy.stats.ks_2samp(method='asymp')``);
+        above ``en = 100,000`` the limit of that distribution, ``P(K > D sqrt(en))`` with K
+        Kolmogorov's distribution (relative difference below 1%, much faster).
 
     Notes
     -----
@@ -189,5 +195,10 @@ def ks_2samp(baseline: object, candidate: object) -> KSResult:
     # binary search with sorted queries; the same for y's values.
     d = max(_max_gap_at_own_values(x, y), _max_gap_at_own_values(y, x))
     en = float(np.round(n * m / (n + m)))
-    pvalue = float(np.clip(sps.kstwo.sf(d, en), 0.0, 1.0))
+    if en > KS_LIMIT_ABOVE:
+        # Kolmogorov's limiting distribution [1]: scipy's exact-n kstwo.sf costs up to 0.5 s at
+        # en = 500,000 and differs from the limit by less than 1% (relative) above 100,000.
+        pvalue = float(np.clip(sps.kstwobign.sf(d * np.sqrt(en)), 0.0, 1.0))
+    else:
+        pvalue = float(np.clip(sps.kstwo.sf(d, en), 0.0, 1.0))
     return KSResult(statistic=d, pvalue=pvalue, n_baseline=n, n_candidate=m)
