@@ -11,7 +11,7 @@ from service import intake, views
 from service.api.deps import ClockDep, DbDep, PrincipalDep
 from service.api.routers.snapshots import ERRORS, ModelPath
 from service.api.schemas import BaselinePublic, BaselineSet, ModelList, ModelPublic, VerdictList
-from service.errors import InvalidInput, NotFound
+from service.errors import Forbidden, InvalidInput, NotFound
 from service.store import repo
 
 router = APIRouter(prefix="/v1/models", tags=["models"])
@@ -85,6 +85,8 @@ def set_baseline(
     body: BaselineSet, db: DbDep, clock: ClockDep, principal: PrincipalDep,
     model: str = ModelPath,
 ) -> dict[str, object]:
+    if not principal.allows("operate", model):
+        raise Forbidden(f"{principal.name} may not set the baseline of {model!r}")
     with db.transaction() as session:
         _, snapshot, previous = intake.set_baseline_by_hand(
             session, model_name=model, key=body.snapshot, reason=body.reason,
