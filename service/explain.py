@@ -318,4 +318,7 @@ def explain(
         lines.extend(_finding_line(f))
     if evidence is not None:
         lines.extend(segment_lines(evidence.get("segments", [])))
-    return "\n".join(lines)
+    text = "\n".join(lines)
+    if ascii_only:  # a terminal that cannot print arrows and blocks
+        text = text.replace("→", "->").replace("×", "x").encode("ascii", "replace").decode()
+    return text

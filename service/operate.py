@@ -9,10 +9,12 @@ Override rules (README, "Overrides"):
   is newer than the snapshot serving now, or when nothing serves. When a newer snapshot already
   serves, the override is recorded and the baseline stays; to serve the older snapshot anyway,
   roll back to it (a separate, explicit act).
-* **promote -> hold**: when the candidate serves now, the baseline returns to the snapshot that
-  served before the candidate's latest promotion (cause ``override``). When it no longer serves
-  (a newer snapshot was promoted on top), the baseline stays. When nothing served before it
-  (a model's first snapshot), it keeps serving and the answer says to roll back by hand.
+* **promote -> hold**: when the candidate serves now, the baseline returns to the most recent
+  earlier baseline whose decision in force is still promote (cause ``override``); earlier
+  baselines held by an override since are passed over. When the candidate no longer serves (a
+  newer snapshot was promoted on top), the baseline stays. When there is no earlier baseline to
+  return to (a model's first snapshot), it keeps serving and the answer says to roll back by
+  hand.
 
 Every call writes one audit entry: who, what, when, the decision and the baseline before and
 after, and the reason. Functions never commit (the request's transaction does).
@@ -68,14 +70,25 @@ def clean_reason(reason: str | None) -> str:
     return text
 
 
-def _promotion_of(session: Session, *, model_id: int, snapshot_id: int) -> PromotionRow | None:
-    """The latest promotion that made *snapshot_id* the baseline."""
-    return session.scalars(
-        select(PromotionRow)
-        .where(PromotionRow.model_id == model_id, PromotionRow.snapshot_id == snapshot_id)
+def _earlier_baseline(session: Session, *, model_id: int, snapshot_id: int
+                      ) -> SnapshotRow | None:
+    """The most recent earlier baseline other than *snapshot_id* whose decision in force is
+    still promote (a snapshot held by an override since is passed over)."""
+    seen: set[int] = {snapshot_id}
+    for promotion in session.scalars(
+        select(PromotionRow).where(PromotionRow.model_id == model_id)
         .order_by(PromotionRow.id.desc())
-        .limit(1)
-    ).first()
+    ):
+        if promotion.snapshot_id in seen:
+            continue
+        seen.add(promotion.snapshot_id)
+        verdict = repo.verdict_for_snapshot(session, snapshot_id=promotion.snapshot_id)
+        if verdict is not None:
+            overrides = repo.overrides_for(session, verdict_ids=[verdict.id])[verdict.id]
+            if repo.effective_decision(verdict, overrides) != "promote":
+                continue
+        return repo.snapshot_by_id(session, snapshot_id=promotion.snapshot_id)
+    return None
 
 
 def override_verdict(
@@ -152,17 +165,14 @@ def _baseline_target(
     if serving is None or serving.id != snapshot.id:
         what = serving.key if serving else "nothing"
         return None, f"{snapshot.key} does not serve ({what} does); the baseline is unchanged."
-    promotion = _promotion_of(session, model_id=model.id, snapshot_id=snapshot.id)
-    previous = repo.snapshot_by_id(
-        session, snapshot_id=promotion.previous_id if promotion else None
-    )
-    if previous is None or previous.id == snapshot.id:
+    previous = _earlier_baseline(session, model_id=model.id, snapshot_id=snapshot.id)
+    if previous is None:
         return None, (
             f"{snapshot.key} keeps serving: no earlier baseline to return to. Roll back by hand "
             "to another snapshot if it must stop serving."
         )
-    return previous, (f"the baseline goes back to {previous.key}, which served before "
-                      f"{snapshot.key}.")
+    return previous, (f"the baseline goes back to {previous.key}, the latest earlier "
+                      "baseline still in force as promote.")
 
 
 def rollback(
