@@ -40,7 +40,9 @@ class Side:
 
     def shares(self) -> tuple[float, ...]:
         total = float(sum(self.counts))
-        return tuple(c / total for c in self.counts) if total > 0 else tuple(0.0 for _ in self.counts)
+        if total <= 0:
+            return tuple(0.0 for _ in self.counts)
+        return tuple(c / total for c in self.counts)
 
 
 @dataclass(frozen=True)
@@ -66,7 +68,7 @@ class Distribution:
                 "source": s.source,
             }
 
-        return json_safe(
+        out: dict[str, Any] = json_safe(
             {
                 "edges": list(self.edges),
                 "candidate": side(self.candidate),
@@ -74,6 +76,7 @@ class Distribution:
                 "notes": list(self.notes),
             }
         )
+        return out
 
 
 # --- bins ---------------------------------------------------------------------------------
@@ -95,7 +98,8 @@ def counts_from_values(values: np.ndarray, edges: np.ndarray) -> np.ndarray:
     """Counts of the finite *values* in the bins given by *edges* (the last bin closed)."""
     finite = values[np.isfinite(values)]
     counts, _ = np.histogram(finite, bins=edges)
-    return counts.astype(float)
+    out: np.ndarray = counts.astype(float)
+    return out
 
 
 def counts_from_quantiles(
@@ -118,7 +122,8 @@ def counts_from_quantiles(
     cdf = np.interp(edges, q_unique, levels_unique, left=0.0, right=1.0)
     if q_unique.size == 1:  # all mass at one value
         cdf = np.where(edges >= q_unique[0], 1.0, 0.0)
-    return np.clip(np.diff(cdf), 0.0, None) * finite
+    out: np.ndarray = np.clip(np.diff(cdf), 0.0, None) * finite
+    return out
 
 
 # --- the two distributions ----------------------------------------------------------------

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
-from datetime import datetime
+from datetime import UTC, datetime
 from typing import Any
 
 MARK = {"breach": "x", "advisory": "!", "inconclusive": "?", "ok": "-", "skipped": " "}
@@ -108,12 +108,19 @@ def headline(verdict: Mapping[str, Any]) -> str:
     if overrides:
         last = overrides[-1]
         text += (f"; overridden to {last['decision'].upper()} by {last['actor']} "
-                 f"at {last['created_at']}")
+                 f"at {moment(last['created_at'])}")
     return text
 
 
 def _when(text: str) -> datetime:
     return datetime.fromisoformat(text.replace("Z", "+00:00"))
+
+
+def moment(text: str | None) -> str:
+    """An ISO 8601 time as ``2026-12-01 02:45 UTC``."""
+    if not text:
+        return "?"
+    return _when(text).astimezone(UTC).strftime("%Y-%m-%d %H:%M UTC")
 
 
 def _span(seconds: float) -> str:
@@ -155,9 +162,9 @@ def _changes(verdict: Mapping[str, Any], evidence: Mapping[str, Any] | None) -> 
     if cand.get("trained_until") and base.get("trained_until"):
         gap = (_when(cand["trained_until"]) - _when(base["trained_until"])).total_seconds()
         where = "past" if gap > 0 else "before"
-        out.append(f"trained until {cand['trained_until']}: {_span(gap)} {where} the "
+        out.append(f"trained until {moment(cand['trained_until'])}: {_span(gap)} {where} the "
                    "baseline's watermark" if gap else
-                   f"trained until {cand['trained_until']}, the same as the baseline")
+                   f"trained until {moment(cand['trained_until'])}, the same as the baseline")
     rows_c, rows_b = cand.get("rows_trained"), base.get("rows_trained")
     if rows_c is not None and rows_b:
         out.append(f"rows trained {rows_b:,} → {rows_c:,} ({(rows_c - rows_b) / rows_b:+.1%})")
@@ -208,8 +215,8 @@ def briefing(
         advisories = [f for f in verdict.get("findings", []) if f.get("outcome") == "advisory"]
         why += [f"advisory (does not hold): {f['message']}" for f in advisories]
     for o in verdict.get("overrides") or []:
-        why.append(f"override to {o['decision']} by {o['actor']} at {o['created_at']}: "
-                   f"{o['reason']}")
+        why.append(f"override to {o['decision']} by {o['actor']} at "
+                   f"{moment(o['created_at'])}: {o['reason']}")
     if verdict.get("error"):
         how = ["the gate could not judge (fail closed): " + str(verdict["error"])]
     elif failed:
@@ -304,7 +311,7 @@ def explain(
     lines.append(
         f"  judged against baseline {verdict.get('baseline') or '(none)'}"
         f" under policy {verdict.get('policy') or '(none)'} {verdict.get('policy_digest') or ''}"
-        f" at {verdict['created_at']} (verdict {verdict['verdict_id']})"
+        f" at {moment(verdict['created_at'])} (verdict {verdict['verdict_id']})"
     )
     answers = briefing(verdict, evidence)
     for key, title in SECTIONS:

@@ -81,7 +81,7 @@ def test_briefing_answers_four_questions_for_a_hold() -> None:
     assert "mean score 0.3 → 0.45 (+0.15)" in changed
     assert "auc 0.781 → 0.762 (-0.019)" in changed
     assert "training code b7e41d2 → 9f2c1e0" in changed
-    assert "trained until 2026-12-01T02:44:00Z: 15 min past the baseline's watermark" in changed
+    assert "trained until 2026-12-01 02:44 UTC: 15 min past the baseline's watermark" in changed
     assert "rows trained 1,600,000 → 1,840,000 (+15.0%)" in changed
     nxt = answers["what_next"]
     assert nxt[0] == "nothing to do to stay safe: the baseline 2026-12-01T02:30Z keeps serving"
@@ -95,7 +95,7 @@ def test_briefing_after_override_and_for_promote() -> None:
                                        overridden=True),
                                {**EVIDENCE, "serving": "2026-12-01T02:45Z",
                                 "candidate_serving": True})
-    assert answers["why"][-1] == ("override to promote by alice at 2026-12-01T03:01:00Z: "
+    assert answers["why"][-1] == ("override to promote by alice at 2026-12-01 03:01 UTC: "
                                   "planned relaunch")
     assert "override to hold" in answers["what_next"][0]
     promoted = explain.briefing(verdict(decision="promote", effective_decision="promote",
@@ -109,7 +109,7 @@ def test_headline_shows_override() -> None:
          "reason": "r"}
     assert explain.headline(verdict(overrides=[o])) == (
         "shelf-ranker 2026-12-01T02:45Z: HELD by the gate; overridden to PROMOTE by alice at "
-        "2026-12-01T03:01:00Z")
+        "2026-12-01 03:01 UTC")
 
 
 def test_sparkline_heights_are_proportional() -> None:

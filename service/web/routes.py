@@ -108,6 +108,13 @@ def strip_items(model: str, rows: list[tuple[VerdictRow, SnapshotRow]],
 # --- the model list -------------------------------------------------------------------------
 
 
+def stuck_first(view: Mapping[str, Any]) -> tuple[bool, int, bool, str]:
+    """Sort key of the model list: stuck models, then more holds in a row, then a last verdict
+    held, then by name."""
+    last_held = (view.get("last_verdict") or {}).get("effective_decision") == "hold"
+    return (not view["stuck"], -int(view["consecutive_holds"]), not last_held, str(view["name"]))
+
+
 @router.get("/", response_class=HTMLResponse)
 def models_page(request: Request, db: DbDep, clock: ClockDep, principal: WebPrincipalDep
                 ) -> Response:
@@ -124,9 +131,7 @@ def models_page(request: Request, db: DbDep, clock: ClockDep, principal: WebPrin
                                                gap=1.5, height=18)
             view["stuck"] = bool(view.get("stuck")) or view["consecutive_holds"] >= STUCK_HOLDS
             shown.append(view)
-    last_hold = lambda v: (v["last_verdict"] or {}).get("effective_decision") == "hold"  # noqa: E731
-    shown.sort(key=lambda v: (not v["stuck"], -v["consecutive_holds"], not last_hold(v),
-                              v["name"]))
+    shown.sort(key=stuck_first)
     return render(request, "models.html", {"models": shown}, principal, now)
 
 

@@ -65,48 +65,59 @@ def metric_threshold(finding: Mapping[str, Any], config: Any | None) -> float | 
         candidates.append(base - sign * relative * abs(base))
     if not candidates:
         return None
-    return max(candidates) if sign > 0 else min(candidates)
+    return float(max(candidates) if sign > 0 else min(candidates))
+
+
+def _by_check(row: Row) -> dict[str, Mapping[str, Any]]:
+    """A row's findings by check name, and each metric check's finding as ``metric:<name>``."""
+    out: dict[str, Mapping[str, Any]] = {}
+    for f in row.findings:
+        out.setdefault(str(f.get("check")), f)
+        statistic = str(f.get("statistic") or "")
+        if f.get("kind") == "metric" and statistic.endswith(" change"):
+            out.setdefault("metric:" + statistic[: -len(" change")], f)
+    return out
 
 
 def build_trends(model: str, rows: Sequence[Row], policy: Policy | None) -> list[Trend]:
     """Trends for the statistics of the checks, the reported metrics and the mean score."""
-    def point(row: Row, value: float | None, limit: float | None, breach: bool) -> TrendPoint:
-        return TrendPoint(row.label, value, limit, breach=breach, held=row.decision == "hold",
-                          href=snapshot_url(model, row.key), note=row.key)
+    def point(row: Row, f: Mapping[str, Any] | None, value: float | None,
+              limit: float | None) -> TrendPoint:
+        return TrendPoint(row.label, value, limit,
+                          breach=bool(f and f.get("outcome") == "breach"),
+                          held=row.decision == "hold", href=snapshot_url(model, row.key),
+                          note=row.key)
 
+    indexed = [(row, _by_check(row)) for row in rows]
     trends: list[Trend] = []
     checks: dict[str, str] = {}
     for row in rows:
         for f in row.findings:
             if f.get("kind") not in NOT_TRENDED and f.get("value") is not None:
-                checks.setdefault(f["check"], f.get("statistic") or "value")
+                checks.setdefault(str(f["check"]), str(f.get("statistic") or "value"))
     for check, statistic in checks.items():
         points = []
-        for row in rows:
-            f = next((x for x in row.findings if x.get("check") == check), None)
-            points.append(point(row, f.get("value") if f else None, f.get("limit") if f else None,
-                                bool(f and f.get("outcome") == "breach")))
-        trends.append(Trend(f"{check}: {statistic.upper() if len(statistic) <= 4 else statistic}"
-                            , points, []))
+        for row, found in indexed:
+            hit = found.get(check)
+            points.append(point(row, hit, hit.get("value") if hit else None,
+                                hit.get("limit") if hit else None))
+        label = statistic.upper() if len(statistic) <= 4 else statistic
+        trends.append(Trend(f"{check}: {label}", points, []))
     configs = _metric_configs(policy)
-    metric_names = sorted({name for row in rows for name in row.metrics})
-    for name in metric_names:
+    for name in sorted({name for row in rows for name in row.metrics}):
         config = configs.get(name)
         points = []
-        for row in rows:
-            f = next((x for x in row.findings
-                      if x.get("kind") == "metric" and x.get("statistic") == f"{name} change"),
-                     None)
-            threshold = metric_threshold(f, config) if f else None
-            points.append(point(row, row.metrics.get(name), threshold,
-                                bool(f and f.get("outcome") == "breach")))
+        for row, found in indexed:
+            hit = found.get("metric:" + name)
+            threshold = metric_threshold(hit, config) if hit else None
+            points.append(point(row, hit, row.metrics.get(name), threshold))
         bands = []
         if config is not None and getattr(config, "floor", None) is not None:
             bands.append(("floor", float(config.floor)))
         if config is not None and getattr(config, "ceiling", None) is not None:
             bands.append(("ceiling", float(config.ceiling)))
         trends.append(Trend(f"reported {name}", points, bands, "allowed"))
-    means = [point(row, (row.summary or {}).get("mean"), None, False) for row in rows]
+    means = [point(row, None, (row.summary or {}).get("mean"), None) for row in rows]
     if any(p.value is not None for p in means):
         trends.append(Trend("mean score of the sample", means, []))
     return trends

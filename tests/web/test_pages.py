@@ -124,7 +124,7 @@ def test_model_page_trends_timeline_and_baseline_history(h: Harness) -> None:
     assert "tg-limit" in classes and "tg-band" in classes  # allowed drop and floor drawn
     assert "tg-dot tg-breach tg-held" in classes            # s04 breached the AUC check
     timeline = html[html.index('id="timeline"'):html.index('id="baseline"')]
-    assert [k for k in re.findall(r'snapshots/(s0\d)"', timeline)] == ["s04", "s03", "s02", "s01"]
+    assert re.findall(r'snapshots/(s0\d)"', timeline) == ["s04", "s03", "s02", "s01"]
     history = html[html.index('id="baseline"'):html.index('id="rollback"')]
     assert history.count("promoted by the gate") == 3
 

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from typing import Annotated
+from typing import Annotated, Any
 
 from fastapi import APIRouter, Query
 
@@ -16,7 +16,10 @@ from service.store import repo
 router = APIRouter(prefix="/v1/audit", tags=["audit"])
 
 
-@router.get("", response_model=AuditList, responses={403: ERRORS[404], 422: ERRORS[422]},
+RESPONSES: dict[int | str, dict[str, Any]] = {403: dict(ERRORS[404]), 422: dict(ERRORS[422])}
+
+
+@router.get("", response_model=AuditList, responses=RESPONSES,
             summary="Audit entries newest first: who, what, when, before and after")
 def list_audit(
     db: DbDep,

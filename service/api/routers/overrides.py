@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from typing import Annotated
+from typing import Annotated, Any
 
 from fastapi import APIRouter, Query
 
@@ -13,13 +13,15 @@ from service.api.schemas import EvidencePublic, OverrideCreate, OverrideResult
 from service.errors import Forbidden
 
 router = APIRouter(prefix="/v1/verdicts", tags=["verdicts"])
+RESPONSES: dict[int | str, dict[str, Any]] = {code: dict(v) for code, v in ERRORS.items()}
+RESPONSES[403] = dict(ERRORS[404])
 
 
 @router.post(
     "/{verdict_id}/override",
     response_model=OverrideResult,
     status_code=201,
-    responses={403: ERRORS[404], **ERRORS},
+    responses=RESPONSES,
     summary="Override a verdict's decision (audited; the verdict itself is kept as it was)",
 )
 def override(
@@ -47,7 +49,7 @@ def override(
 @router.get(
     "/{verdict_id}/evidence",
     response_model=EvidencePublic,
-    responses={403: ERRORS[404], **ERRORS},
+    responses=RESPONSES,
     summary="Score distributions on common bins, per-segment table, what changed, what serves",
 )
 def evidence(
