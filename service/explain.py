@@ -91,6 +91,11 @@ def assess(finding: Mapping[str, Any]) -> tuple[str, str]:
         return "clear", f"{times}; reported by the trainer without an interval"
     if ratio is not None:
         return "marginal", f"only {times}; reported by the trainer without an interval"
+    base = finding.get("baseline_value")
+    if value is not None and base:
+        return "likely", (f"changed by {value:+.3g} ({value / abs(base):+.1%} of the "
+                          f"{finding.get('against') or 'other'}'s value); reported by the trainer "
+                          "without an interval")
     return "likely", "reported by the trainer without an interval"
 
 
@@ -133,6 +138,12 @@ def _span(seconds: float) -> str:
     return f"{minutes} min" if minutes else f"{secs} s"
 
 
+def _change(name: str, before: float, after: float) -> str:
+    if before == after:
+        return f"{name} {number(after)}, unchanged"
+    return f"{name} {number(before)} → {number(after)} ({after - before:+.3g})"
+
+
 def _changes(verdict: Mapping[str, Any], evidence: Mapping[str, Any] | None) -> list[str]:
     out: list[str] = []
     if evidence is None:
@@ -147,15 +158,12 @@ def _changes(verdict: Mapping[str, Any], evidence: Mapping[str, Any] | None) -> 
     if base is None:
         return ["nothing to compare with: there was no baseline"]
     if cand.get("score_mean") is not None and base.get("score_mean") is not None:
-        delta = cand["score_mean"] - base["score_mean"]
-        out.append(f"mean score {number(base['score_mean'])} → {number(cand['score_mean'])} "
-                   f"({delta:+.3g})")
+        out.append(_change("mean score", base["score_mean"], cand["score_mean"]))
     if cand.get("nonfinite"):
         out.append(f"{cand['nonfinite']:,} of {cand['sample_rows']:,} candidate scores are not "
                    "finite (NaN, infinite or missing)")
     for name in sorted(set(cand.get("metrics", {})) & set(base.get("metrics", {}))):
-        a, b = base["metrics"][name], cand["metrics"][name]
-        out.append(f"{name} {number(a)} → {number(b)} ({b - a:+.3g})")
+        out.append(_change(name, base["metrics"][name], cand["metrics"][name]))
     if cand.get("code_version") != base.get("code_version"):
         out.append(f"training code {base.get('code_version') or '?'} → "
                    f"{cand.get('code_version') or '?'}")

@@ -71,6 +71,9 @@ def test_assess_levels(overrides: dict[str, Any], level: str) -> None:
 
 def test_assess_sentence_names_ratio_and_p() -> None:
     assert explain.assess(finding()) == ("clear", "3.1× its limit, p < 1e-16: far beyond chance")
+    relative = finding(kind="metric", pvalue=None, limit=None, value=-0.0301, baseline_value=0.301)
+    assert explain.assess(relative) == ("likely", "changed by -0.0301 (-10.0% of the baseline's "
+                                        "value); reported by the trainer without an interval")
 
 
 def test_briefing_answers_four_questions_for_a_hold() -> None:
@@ -83,6 +86,9 @@ def test_briefing_answers_four_questions_for_a_hold() -> None:
     assert "training code b7e41d2 → 9f2c1e0" in changed
     assert "trained until 2026-12-01 02:44 UTC: 15 min past the baseline's watermark" in changed
     assert "rows trained 1,600,000 → 1,840,000 (+15.0%)" in changed
+    same = explain.briefing(verdict(), {**EVIDENCE, "candidate": {**EVIDENCE["candidate"],
+                                                                 "score_mean": 0.30}})
+    assert "mean score 0.3, unchanged" in same["what_changed"]
     nxt = answers["what_next"]
     assert nxt[0] == "nothing to do to stay safe: the baseline 2026-12-01T02:30Z keeps serving"
     assert any("tidegate override 812 --decision promote" in line for line in nxt)

@@ -255,3 +255,25 @@ def test_pages_use_no_script_and_no_outside_resources(h: Harness) -> None:
         html = h.http.get(url).text
         assert "<script" not in html
         assert not re.search(r'(src|href)="(https?:)?//', html)
+
+
+def test_pages_render_without_sample_baseline_or_policy(h: Harness) -> None:
+    # a model no policy matches: held fail-closed with no findings and no baseline
+    posted = h.http.post("/v1/models/pocket-list/snapshots",
+                         json={"key": "p1", "metrics": {"auc": 0.7}})
+    assert posted.status_code == 201 and posted.json()["decision"] == "hold"
+    page = h.http.get("/ui/models/pocket-list/snapshots/p1")
+    assert page.status_code == 200
+    assert "no policy matches" in page.text and "no finite scores to draw" in page.text
+    assert "No segment columns" in page.text
+    model = h.http.get("/ui/models/pocket-list")
+    assert model.status_code == 200 and "no policy matches: every post is held" in model.text
+    # a snapshot without a sample, judged against a baseline with one
+    h.clock.advance(minutes=15)
+    bare = snapshot_body("s05", 7)
+    del bare["sample"]
+    assert h.http.post("/v1/models/shelf-ranker/snapshots", json=bare).status_code == 201
+    page = h.http.get("/ui/models/shelf-ranker/snapshots/s05")
+    assert page.status_code == 200 and len(svgs(page.text, "tg-hist")) == 1
+    assert h.http.get("/ui/models/shelf-ranker").status_code == 200
+    assert h.http.get("/v1/verdicts/8/evidence").json()["distribution"]["candidate"] is None
