@@ -197,6 +197,77 @@ def cmd_baseline_set(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def cmd_replay(args: argparse.Namespace) -> int:
+    from service.client import ClientError
+
+    text = None
+    if args.policy:
+        try:
+            text = Path(args.policy).read_text("utf-8")
+        except OSError as exc:
+            print(f"error: cannot read {args.policy}: {exc}", file=sys.stderr)
+            return EXIT_ERROR
+    try:
+        with _client(args) as client:
+            result = client.replay(args.model, text, args.limit)
+    except ClientError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_ERROR
+    if args.json:
+        _print_json(result)
+        return EXIT_OK
+    s = result["summary"]
+    print(f"{result['model']} replayed under {result['policy']} ({result['policy_digest']})")
+    print(f"  {s['snapshots']} snapshots: held then {s['held_then']}, held by replay "
+          f"{s['held_by_replay']}, changed {s['changed']}; overridden holds still held "
+          f"{s['overridden_holds_still_held']}; samples pruned {s['samples_pruned']}")
+    for row in result["data"]:
+        if row["changed"]:
+            reason = row["replay_reasons"][0] if row["replay_reasons"] else ""
+            print(f"  {row['snapshot']:<24} {row['decision']} -> {row['replay_decision']} {reason}")
+    return EXIT_OK
+
+
+def cmd_reference(args: argparse.Namespace) -> int:
+    from service.client import ClientError
+
+    snapshot = args.snapshot if args.reference_action == "pin" else None
+    try:
+        with _client(args) as client:
+            result = client.set_reference(args.model, snapshot, args.reason)
+    except ClientError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_ERROR
+    if args.json:
+        _print_json(result)
+        return EXIT_OK
+    now = result["reference"] or "none pinned (the policy's lag_hours applies, if set)"
+    print(f"{result['model']}: reference is now {now} (was {result['previous'] or 'none'})")
+    return EXIT_OK
+
+
+def cmd_models(args: argparse.Namespace) -> int:
+    from service.client import ClientError
+    from service.gate.history import format_age
+
+    try:
+        with _client(args) as client:
+            models = client.models()
+    except ClientError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_ERROR
+    if args.json:
+        _print_json(models)
+        return EXIT_OK
+    for m in models:
+        last = m["last_verdict"]["decision"] if m["last_verdict"] else "-"
+        age = m["baseline_age_seconds"]
+        serving = f"{m['baseline'] or '-'} ({format_age(age)} ago)" if age is not None else "-"
+        state = "STUCK: " + m["stuck"]["message"] if m["stuck"]["stuck"] else ""
+        print(f"{m['name']:<20} baseline {serving:<36} last {last:<8} {state}".rstrip())
+    return EXIT_OK
+
+
 def cmd_override(args: argparse.Namespace) -> int:
     from service.client import ClientError
 
@@ -239,7 +310,7 @@ def _state(value: dict[str, Any] | None) -> str:
     if not value:
         return "-"
     return ", ".join(f"{k} {value[k] if value[k] is not None else 'none'}"
-                     for k in ("decision", "baseline") if k in value) or "-"
+                     for k in ("decision", "baseline", "reference") if k in value) or "-"
 
 
 def cmd_audit(args: argparse.Namespace) -> int:
@@ -269,7 +340,11 @@ def cmd_audit(args: argparse.Namespace) -> int:
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
-    from fastapi.testclient import TestClient
+    import warnings
+
+    with warnings.catch_warnings():  # the in-process client's transport notice is noise here
+        warnings.simplefilter("ignore")
+        from fastapi.testclient import TestClient
 
     from service import demo
     from service.app import create_app
@@ -371,6 +446,31 @@ def build_parser() -> argparse.ArgumentParser:
     remote(b)
     b.set_defaults(func=cmd_baseline_set)
 
+    p = sub.add_parser("replay", help="judge a model's past snapshots again under a policy")
+    p.add_argument("model")
+    p.add_argument("--policy", default=None, help="policy TOML file (default: the one in force)")
+    p.add_argument("--limit", type=int, default=100)
+    remote(p)
+    p.set_defaults(func=cmd_replay)
+
+    p = sub.add_parser("reference", help="pin or unpin a model's reference snapshot")
+    rsub = p.add_subparsers(dest="reference_action", required=True)
+    r = rsub.add_parser("pin", help="make SNAPSHOT the reference of MODEL")
+    r.add_argument("model")
+    r.add_argument("snapshot")
+    r.add_argument("--reason", required=True)
+    remote(r)
+    r.set_defaults(func=cmd_reference)
+    r = rsub.add_parser("unpin", help="drop MODEL's pinned reference (lag_hours applies again)")
+    r.add_argument("model")
+    r.add_argument("--reason", required=True)
+    remote(r)
+    r.set_defaults(func=cmd_reference)
+
+    p = sub.add_parser("models", help="every model: its baseline, last verdict, stuck or not")
+    remote(p)
+    p.set_defaults(func=cmd_models)
+
     p = sub.add_parser("override", help="override a verdict's decision, with a reason")
     p.add_argument("verdict", type=int, help="verdict id (tidegate history shows them)")
     p.add_argument("--decision", choices=["promote", "hold"], required=True)
@@ -404,8 +504,9 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    logging.basicConfig(level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s %(message)s")
-    logging.getLogger("httpx").setLevel(logging.WARNING)  # one line per request is noise here
+    logging.basicConfig(
+        level=logging.WARNING, format="%(asctime)s %(levelname)s %(name)s %(message)s"
+    )
     args = build_parser().parse_args(argv)
     try:
         return int(args.func(args))

@@ -102,6 +102,18 @@ class TidegateClient:
             "PUT", f"/v1/models/{model}/baseline", json={"snapshot": snapshot, "reason": reason}
         )
 
+    def replay(self, model: str, policy_text: str | None, limit: int = 100) -> dict[str, Any]:
+        """Judge past snapshots again under *policy_text* (None: the policy in force)."""
+        return self.request(  # type: ignore[no-any-return]
+            "POST", f"/v1/models/{model}/replay", json={"policy": policy_text, "limit": limit}
+        )
+
+    def set_reference(self, model: str, snapshot: str | None, reason: str) -> dict[str, Any]:
+        """Pin *snapshot* as the model's reference; None unpins."""
+        return self.request(  # type: ignore[no-any-return]
+            "PUT", f"/v1/models/{model}/reference", json={"snapshot": snapshot, "reason": reason}
+        )
+
     def override(self, verdict_id: int, decision: str, reason: str) -> dict[str, Any]:
         """Put *decision* in force for a verdict, with a reason (audited)."""
         return self.request(  # type: ignore[no-any-return]

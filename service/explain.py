@@ -107,13 +107,15 @@ def failed_findings(verdict: Mapping[str, Any]) -> list[Mapping[str, Any]]:
 
 
 def headline(verdict: Mapping[str, Any]) -> str:
-    gate = "held" if verdict["decision"] == "hold" else "promoted"
-    text = f"{verdict['model']} {verdict['snapshot']}: {gate.upper()} by the gate"
+    """``shelf-ranker 2026-12-01T02:45Z: HOLD``, and the override in force, if any."""
+    text = f"{verdict['model']} {verdict['snapshot']}: {verdict['decision'].upper()}"
     overrides = verdict.get("overrides") or []
     if overrides:
         last = overrides[-1]
-        text += (f"; overridden to {last['decision'].upper()} by {last['actor']} "
-                 f"at {moment(last['created_at'])}")
+        text += (f" (overridden to {last['decision'].upper()} by {last['actor']} "
+                 f"at {moment(last['created_at'])})")
+    elif verdict.get("effective_decision", verdict["decision"]) != verdict["decision"]:
+        text += f" (overridden to {verdict['effective_decision'].upper()})"
     return text
 
 
@@ -125,7 +127,10 @@ def moment(text: str | None) -> str:
     """An ISO 8601 time as ``2026-12-01 02:45 UTC``."""
     if not text:
         return "?"
-    return _when(text).astimezone(UTC).strftime("%Y-%m-%d %H:%M UTC")
+    try:
+        return _when(text).astimezone(UTC).strftime("%Y-%m-%d %H:%M UTC")
+    except ValueError:
+        return text
 
 
 def _span(seconds: float) -> str:
@@ -142,6 +147,17 @@ def _change(name: str, before: float, after: float) -> str:
     if before == after:
         return f"{name} {number(after)}, unchanged"
     return f"{name} {number(before)} → {number(after)} ({after - before:+.3g})"
+
+
+def _watermark(candidate: str, baseline: str) -> str:
+    try:
+        gap = (_when(candidate) - _when(baseline)).total_seconds()
+    except ValueError:
+        return f"trained until {candidate} (baseline {baseline})"
+    if not gap:
+        return f"trained until {moment(candidate)}, the same as the baseline"
+    where = "past" if gap > 0 else "before"
+    return f"trained until {moment(candidate)}: {_span(gap)} {where} the baseline's watermark"
 
 
 def _changes(verdict: Mapping[str, Any], evidence: Mapping[str, Any] | None) -> list[str]:
@@ -168,11 +184,7 @@ def _changes(verdict: Mapping[str, Any], evidence: Mapping[str, Any] | None) -> 
         out.append(f"training code {base.get('code_version') or '?'} → "
                    f"{cand.get('code_version') or '?'}")
     if cand.get("trained_until") and base.get("trained_until"):
-        gap = (_when(cand["trained_until"]) - _when(base["trained_until"])).total_seconds()
-        where = "past" if gap > 0 else "before"
-        out.append(f"trained until {moment(cand['trained_until'])}: {_span(gap)} {where} the "
-                   "baseline's watermark" if gap else
-                   f"trained until {moment(cand['trained_until'])}, the same as the baseline")
+        out.append(_watermark(cand["trained_until"], base["trained_until"]))
     rows_c, rows_b = cand.get("rows_trained"), base.get("rows_trained")
     if rows_c is not None and rows_b:
         out.append(f"rows trained {rows_b:,} → {rows_c:,} ({(rows_c - rows_b) / rows_b:+.1%})")
@@ -180,7 +192,8 @@ def _changes(verdict: Mapping[str, Any], evidence: Mapping[str, Any] | None) -> 
 
 
 def _next_steps(verdict: Mapping[str, Any], evidence: Mapping[str, Any] | None) -> list[str]:
-    vid, model, key = verdict["verdict_id"], verdict["model"], verdict["snapshot"]
+    vid = verdict.get("verdict_id", "VERDICT")
+    model, key = verdict["model"], verdict["snapshot"]
     effective = verdict.get("effective_decision", verdict["decision"])
     serving = evidence.get("serving") if evidence else None
     candidate_serving = bool(evidence and evidence.get("candidate_serving"))
@@ -319,7 +332,7 @@ def explain(
     lines.append(
         f"  judged against baseline {verdict.get('baseline') or '(none)'}"
         f" under policy {verdict.get('policy') or '(none)'} {verdict.get('policy_digest') or ''}"
-        f" at {moment(verdict['created_at'])} (verdict {verdict['verdict_id']})"
+        f" at {moment(verdict.get('created_at'))} (verdict {verdict.get('verdict_id', '?')})"
     )
     answers = briefing(verdict, evidence)
     for key, title in SECTIONS:

@@ -6,11 +6,14 @@ pages render them. One place decides what a verdict or a model looks like to a p
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from datetime import datetime, timedelta
 from typing import Any
 
 from sqlalchemy.orm import Session
 
+from service.gate.history import stuck_state
+from service.gate.policy import HistoryRules, Policy, select_policy
 from service.store import repo
 from service.store.tables import (
     AuditRow,
@@ -117,7 +120,9 @@ def consecutive_holds(session: Session, *, model_id: int, limit: int = 50) -> in
     return count
 
 
-def model_view(session: Session, *, model: ModelRow, now: datetime) -> dict[str, Any]:
+def model_view(
+    session: Session, *, model: ModelRow, now: datetime, policies: Sequence[Policy] = ()
+) -> dict[str, Any]:
     baseline = repo.snapshot_by_id(session, snapshot_id=model.baseline_id)
     reference = repo.snapshot_by_id(session, snapshot_id=model.reference_id)
     last = repo.last_verdict(session, model_id=model.id)
@@ -127,17 +132,23 @@ def model_view(session: Session, *, model: ModelRow, now: datetime) -> dict[str,
         last_view = verdict_summary(last[0], last[1], overrides, model.name)
     since = repo.utc(model.baseline_since)
     age = (now - since).total_seconds() if since else None
+    policy = select_policy(policies, model.name)
+    # A model no policy matches uses the default threshold.
+    threshold = (policy.history if policy is not None else HistoryRules()).stuck_after_holds
+    holds = consecutive_holds(session, model_id=model.id, limit=max(50, threshold + 1))
     return {
         "name": model.name,
         "baseline": baseline.key if baseline else None,
         "baseline_since": iso(since),
         "baseline_age_seconds": round(age, 1) if age is not None else None,
         "reference": reference.key if reference else None,
+        "reference_lag_hours": policy.reference.lag_hours if policy is not None else None,
         "last_verdict": last_view,
         "holds_24h": repo.count_verdicts(
             session, model_id=model.id, decision="hold", since=now - timedelta(hours=24)
         ),
-        "consecutive_holds": consecutive_holds(session, model_id=model.id),
+        "consecutive_holds": holds,
+        "stuck": stuck_state(holds, threshold=threshold, baseline_since=since, now=now).to_dict(),
         "created_at": iso(model.created_at),
     }
 

@@ -32,7 +32,7 @@ def test_why_prints_the_page_explanation_and_both_distributions(
     code, out, _ = run(capsys, service, "why", "shelf-ranker", "s04")
     assert code == cli.EXIT_OK
     lines = out.splitlines()
-    assert lines[0].startswith("shelf-ranker s04: HELD by the gate")
+    assert lines[0].startswith("shelf-ranker s04: HOLD")
     for title in ("why:", "how sure:", "what changed:", "what you can do:", "findings:"):
         assert title in lines
     cand = next(line for line in lines if line.strip().startswith("candidate s04"))

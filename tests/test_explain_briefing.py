@@ -114,8 +114,9 @@ def test_headline_shows_override() -> None:
     o = {"decision": "promote", "actor": "alice", "created_at": "2026-12-01T03:01:00Z",
          "reason": "r"}
     assert explain.headline(verdict(overrides=[o])) == (
-        "shelf-ranker 2026-12-01T02:45Z: HELD by the gate; overridden to PROMOTE by alice at "
-        "2026-12-01 03:01 UTC")
+        "shelf-ranker 2026-12-01T02:45Z: HOLD (overridden to PROMOTE by alice at "
+        "2026-12-01 03:01 UTC)")
+    assert explain.headline(verdict()) == "shelf-ranker 2026-12-01T02:45Z: HOLD"
 
 
 def test_sparkline_heights_are_proportional() -> None:
@@ -142,5 +143,5 @@ def test_explain_text_carries_both_distributions_on_one_scale() -> None:
 
 def test_explain_without_evidence_still_works() -> None:
     text = explain.explain(verdict())
-    assert text.startswith("shelf-ranker 2026-12-01T02:45Z: HELD by the gate")
+    assert text.startswith("shelf-ranker 2026-12-01T02:45Z: HOLD\n")
     assert "mean score 0.3 → 0.45" in text

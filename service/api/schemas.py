@@ -118,15 +118,29 @@ class VerdictList(BaseModel):
     next_cursor: str | None = None
 
 
+class StuckPublic(BaseModel):
+    """Whether the model is stuck behind repeated holds (policy ``[history]``)."""
+
+    stuck: bool
+    consecutive_holds: int
+    threshold: int
+    baseline_age_seconds: float | None = None
+    message: str
+
+
 class ModelPublic(BaseModel):
     name: str
     baseline: str | None = None
     baseline_since: str | None = None
     baseline_age_seconds: float | None = None
-    reference: str | None = None
+    reference: str | None = Field(None, description="The reference pinned by an operator.")
+    reference_lag_hours: float | None = Field(
+        None, description="Without a pinned reference: the baseline as of this many hours ago."
+    )
     last_verdict: VerdictSummary | None = None
     holds_24h: int
     consecutive_holds: int
+    stuck: StuckPublic
     created_at: str
 
 
@@ -169,6 +183,25 @@ class BaselinePublic(BaseModel):
     baseline: str
     previous: str | None = None
     cause: str
+
+
+class ReferenceSet(BaseModel):
+    """Pin a stored snapshot as the model's reference, or unpin (``snapshot`` null)."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    snapshot: Key | None = Field(
+        description="Key of the snapshot to pin; null unpins (the policy's lag applies again)."
+    )
+    reason: Annotated[str, StringConstraints(min_length=1, max_length=2000)] = Field(
+        description="Why (kept in the audit log)."
+    )
+
+
+class ReferencePublic(BaseModel):
+    model: str
+    reference: str | None = None
+    previous: str | None = None
 
 
 class PolicyCheckPublic(BaseModel):
@@ -306,3 +339,35 @@ class ErrorResponse(BaseModel):
 class Health(BaseModel):
     status: Literal["ok", "not_ready"]
     detail: dict[str, Any] = Field(default_factory=dict)
+
+
+class ReplayRequest(BaseModel):
+    """Judge past snapshots again under a policy (the one in force when omitted)."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    policy: Annotated[str, StringConstraints(max_length=200_000)] | None = Field(
+        None, description="Policy TOML text to try; omitted: the policy in force."
+    )
+    limit: int = Field(100, ge=1, le=1000, description="How many of the latest verdicts.")
+
+
+class ReplayRow(BaseModel):
+    verdict_id: int
+    snapshot: str
+    created_at: str
+    baseline: str | None = None
+    decision: Literal["promote", "hold"]
+    effective_decision: Literal["promote", "hold"]
+    replay_decision: Literal["promote", "hold"]
+    replay_reasons: list[str]
+    changed: bool
+    sample_pruned: bool
+
+
+class ReplayPublic(BaseModel):
+    model: str
+    policy: str
+    policy_digest: str
+    summary: dict[str, Any]
+    data: list[ReplayRow]

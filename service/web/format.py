@@ -131,5 +131,5 @@ def state_text(state: dict[str, object] | None) -> str:
     if not state:
         return DASH
     parts = [f"{k} {state[k] if state[k] is not None else 'none'}"
-             for k in ("decision", "baseline") if k in state]
+             for k in ("decision", "baseline", "reference") if k in state]
     return ", ".join(parts) or DASH

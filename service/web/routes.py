@@ -46,8 +46,6 @@ TEMPLATES.env.globals.update(model_url=format.model_url, snapshot_url=format.sna
 #: Verdicts shown in a model page's decision strip and trends (the latest), and per table page.
 WINDOW = 96
 TABLE_PAGE = 25
-#: Consecutive holds that mark a model as stuck on the model list (common practice, no source).
-STUCK_HOLDS = 3
 
 router = APIRouter(prefix="/ui", include_in_schema=False)
 root = APIRouter(include_in_schema=False)
@@ -112,24 +110,30 @@ def stuck_first(view: Mapping[str, Any]) -> tuple[bool, int, bool, str]:
     """Sort key of the model list: stuck models, then more holds in a row, then a last verdict
     held, then by name."""
     last_held = (view.get("last_verdict") or {}).get("effective_decision") == "hold"
-    return (not view["stuck"], -int(view["consecutive_holds"]), not last_held, str(view["name"]))
+    return (not is_stuck(view), -int(view["consecutive_holds"]), not last_held,
+            str(view["name"]))
+
+
+def is_stuck(view: Mapping[str, Any]) -> bool:
+    """The model view's stuck flag (holds in a row at or over the policy's threshold)."""
+    stuck = view.get("stuck")
+    return bool(stuck.get("stuck")) if isinstance(stuck, Mapping) else bool(stuck)
 
 
 @router.get("/", response_class=HTMLResponse)
-def models_page(request: Request, db: DbDep, clock: ClockDep, principal: WebPrincipalDep
-                ) -> Response:
+def models_page(request: Request, db: DbDep, clock: ClockDep, policies: PoliciesDep,
+                principal: WebPrincipalDep) -> Response:
     now = clock()
     with db.transaction() as session:
         shown = []
         for row in repo.list_model_rows(session):
             if not principal.allows("read", row.name):
                 continue
-            view = views.model_view(session, model=row, now=now)
+            view = views.model_view(session, model=row, now=now, policies=policies)
             rows, _ = repo.list_verdicts(session, model_id=row.id, limit=48)
             overrides = repo.overrides_for(session, verdict_ids=[v.id for v, _ in rows])
             view["strip"] = svg.decision_strip(strip_items(row.name, rows, overrides), cell=7,
                                                gap=1.5, height=18)
-            view["stuck"] = bool(view.get("stuck")) or view["consecutive_holds"] >= STUCK_HOLDS
             shown.append(view)
     shown.sort(key=stuck_first)
     return render(request, "models.html", {"models": shown}, principal, now)
@@ -145,7 +149,7 @@ def _time_label(value: datetime | None) -> str:
 
 def model_context(session: Session, *, row: ModelRow, now: datetime, policies: Any,
                   before: str | None) -> dict[str, Any]:
-    view = views.model_view(session, model=row, now=now)
+    view = views.model_view(session, model=row, now=now, policies=policies)
     window, _ = repo.list_verdicts(session, model_id=row.id, limit=WINDOW)
     before_id = None
     if before:
