@@ -26,8 +26,8 @@ BLOCKS = "▁▂▃▄▅▆▇█"
 ASCII_BLOCKS = ".:-=+*#@"
 
 # How sure (common practice, no source): a breach is "clear" when it is significant at 0.001
-# and the statistic is at least 1.5 times its limit; "marginal" when p >= 0.05 or a reported
-# metric misses its limit by less than twice the allowed change.
+# and the statistic is at least 1.5 times its limit; "marginal" when p >= 0.05 or, without a
+# p-value or interval, the value is less than twice its limit.
 CLEAR_P = 1e-3
 WEAK_P = 0.05
 CLEAR_RATIO = 1.5
@@ -87,16 +87,17 @@ def assess(finding: Mapping[str, Any]) -> tuple[str, str]:
         if pvalue >= WEAK_P:
             return "marginal", f"{times} but {p}: a shift this size often happens by chance"
         return "likely", f"{times}, {p}: significant, though close to the limit"
+    source = ("reported by the trainer without an interval" if kind == "metric"
+              else "computed from the samples, with no p-value or interval")
     if ratio is not None and ratio >= CLEAR_METRIC_RATIO:
-        return "clear", f"{times}; reported by the trainer without an interval"
+        return "clear", f"{times}; {source}"
     if ratio is not None:
-        return "marginal", f"only {times}; reported by the trainer without an interval"
+        return "marginal", f"only {times}; {source}"
     base = finding.get("baseline_value")
     if value is not None and base:
         return "likely", (f"changed by {value:+.3g} ({value / abs(base):+.1%} of the "
-                          f"{finding.get('against') or 'other'}'s value); reported by the trainer "
-                          "without an interval")
-    return "likely", "reported by the trainer without an interval"
+                          f"{finding.get('against') or 'other'}'s value); {source}")
+    return "likely", source
 
 
 def failed_findings(verdict: Mapping[str, Any]) -> list[Mapping[str, Any]]:

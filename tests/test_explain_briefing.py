@@ -61,12 +61,22 @@ EVIDENCE = {
     ({"kind": "metric", "pvalue": None, "value": -0.03, "limit": -0.01}, "clear"),
     ({"kind": "metric", "pvalue": None, "value": -0.012, "limit": -0.01}, "marginal"),
     ({"kind": "metric", "pvalue": None, "limit": None}, "likely"),
+    ({"kind": "lists", "pvalue": None, "value": 0.436, "limit": 0.05}, "clear"),
     ({"pvalue": None, "value": 0.004, "limit": 0.002, "interval": [0.003, 0.005]}, "clear"),
     ({"pvalue": None, "value": 0.004, "limit": 0.002, "interval": [0.001, 0.007]}, "marginal"),
 ])
 def test_assess_levels(overrides: dict[str, Any], level: str) -> None:
     # thresholds: common practice, no source (see explain.CLEAR_P and friends)
     assert explain.assess(finding(**overrides))[0] == level
+
+
+def test_assess_names_where_a_number_without_p_value_comes_from() -> None:
+    metric = finding(kind="metric", pvalue=None, value=-0.03, limit=-0.01)
+    assert explain.assess(metric)[1] == (
+        "3.0× its limit; reported by the trainer without an interval")
+    lists = finding(kind="lists", pvalue=None, value=0.436, limit=0.05)
+    assert explain.assess(lists)[1] == (
+        "8.7× its limit; computed from the samples, with no p-value or interval")
 
 
 def test_assess_sentence_names_ratio_and_p() -> None:

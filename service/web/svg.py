@@ -141,6 +141,8 @@ def histogram_overlay(
                     [_text(width / 2, height / 2, "no finite scores to draw")])
     top_share = max((max(s.shares, default=0.0) for s in series), default=0.0) or 1.0
     ticks_y = nice_ticks(0.0, top_share, 4)
+    if len(ticks_y) >= 2 and ticks_y[-1] < top_share:  # end the axis on a round tick
+        ticks_y.append(ticks_y[-1] + (ticks_y[1] - ticks_y[0]))
     y_max = max(top_share, ticks_y[-1] if ticks_y else top_share)
     xs = Scale(edges[0], edges[-1], box.x0, box.x1)
     ys = Scale(0.0, y_max, box.y0, box.y1)
