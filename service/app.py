@@ -12,11 +12,12 @@ from fastapi import FastAPI
 from service import __version__
 from service.api.deps import Database
 from service.api.errors import install_error_handlers
-from service.api.routers import health, models, snapshots, verdicts
+from service.api.routers import audit, health, models, overrides, snapshots, verdicts
 from service.api.routers import policies as policy_routes
 from service.gate.policy import Policy, load_policies
 from service.settings import Settings
 from service.store import db as store_db
+from service.web import routes as web_routes
 
 log = logging.getLogger("tidegate")
 
@@ -52,6 +53,8 @@ def create_app(
     app.state.policies = loaded
     app.state.clock = clock
     install_error_handlers(app)
-    for module in (snapshots, models, verdicts, policy_routes, health):
+    for module in (snapshots, models, verdicts, overrides, audit, policy_routes, health):
         app.include_router(module.router)
+    app.include_router(web_routes.router)
+    app.include_router(web_routes.root)
     return app

@@ -143,14 +143,24 @@ def cmd_why(args: argparse.Namespace) -> int:
     try:
         with _client(args) as client:
             verdict = _find_verdict(client, args.model, args.snapshot)
+            evidence = client.evidence(verdict["verdict_id"])
     except ClientError as exc:
         print(f"error: {exc}", file=sys.stderr)
         return EXIT_ERROR
     if args.json:
-        _print_json(verdict)
+        _print_json({"verdict": verdict, "evidence": evidence})
     else:
-        print(explain(verdict))
+        print(explain(verdict, evidence, ascii_only=_ascii_only()))
     return EXIT_OK
+
+
+def _ascii_only() -> bool:
+    """True when standard output cannot print the sparkline's block characters."""
+    try:
+        "▁█→×".encode(sys.stdout.encoding or "ascii")
+    except (UnicodeEncodeError, LookupError):
+        return True
+    return False
 
 
 def cmd_history(args: argparse.Namespace) -> int:
@@ -187,11 +197,154 @@ def cmd_baseline_set(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def cmd_replay(args: argparse.Namespace) -> int:
+    from service.client import ClientError
+
+    text = None
+    if args.policy:
+        try:
+            text = Path(args.policy).read_text("utf-8")
+        except OSError as exc:
+            print(f"error: cannot read {args.policy}: {exc}", file=sys.stderr)
+            return EXIT_ERROR
+    try:
+        with _client(args) as client:
+            result = client.replay(args.model, text, args.limit)
+    except ClientError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_ERROR
+    if args.json:
+        _print_json(result)
+        return EXIT_OK
+    s = result["summary"]
+    print(f"{result['model']} replayed under {result['policy']} ({result['policy_digest']})")
+    print(f"  {s['snapshots']} snapshots: held then {s['held_then']}, held by replay "
+          f"{s['held_by_replay']}, changed {s['changed']}; overridden holds still held "
+          f"{s['overridden_holds_still_held']}; samples pruned {s['samples_pruned']}")
+    for row in result["data"]:
+        if row["changed"]:
+            reason = row["replay_reasons"][0] if row["replay_reasons"] else ""
+            print(f"  {row['snapshot']:<24} {row['decision']} -> {row['replay_decision']} {reason}")
+    return EXIT_OK
+
+
+def cmd_reference(args: argparse.Namespace) -> int:
+    from service.client import ClientError
+
+    snapshot = args.snapshot if args.reference_action == "pin" else None
+    try:
+        with _client(args) as client:
+            result = client.set_reference(args.model, snapshot, args.reason)
+    except ClientError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_ERROR
+    if args.json:
+        _print_json(result)
+        return EXIT_OK
+    now = result["reference"] or "none pinned (the policy's lag_hours applies, if set)"
+    print(f"{result['model']}: reference is now {now} (was {result['previous'] or 'none'})")
+    return EXIT_OK
+
+
+def cmd_models(args: argparse.Namespace) -> int:
+    from service.client import ClientError
+    from service.gate.history import format_age
+
+    try:
+        with _client(args) as client:
+            models = client.models()
+    except ClientError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_ERROR
+    if args.json:
+        _print_json(models)
+        return EXIT_OK
+    for m in models:
+        last = m["last_verdict"]["decision"] if m["last_verdict"] else "-"
+        age = m["baseline_age_seconds"]
+        serving = f"{m['baseline'] or '-'} ({format_age(age)} ago)" if age is not None else "-"
+        state = "STUCK: " + m["stuck"]["message"] if m["stuck"]["stuck"] else ""
+        print(f"{m['name']:<20} baseline {serving:<36} last {last:<8} {state}".rstrip())
+    return EXIT_OK
+
+
+def cmd_override(args: argparse.Namespace) -> int:
+    from service.client import ClientError
+
+    try:
+        with _client(args) as client:
+            result = client.override(args.verdict, args.decision, args.reason)
+    except ClientError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_ERROR
+    if args.json:
+        _print_json(result)
+        return EXIT_OK
+    v, o = result["verdict"], result["override"]
+    print(f"{v['model']} {v['snapshot']} (verdict {v['verdict_id']}): "
+          f"{result['decision_before']} -> {o['decision']} by {o['actor']} at {o['created_at']}")
+    print(f"baseline: {result['baseline_before'] or 'none'} -> {result['baseline_after'] or 'none'}"
+          f"{'' if result['baseline_moved'] else ' (unchanged)'}")
+    print(result["note"])
+    return EXIT_OK
+
+
+def cmd_rollback(args: argparse.Namespace) -> int:
+    from service.client import ClientError
+
+    try:
+        with _client(args) as client:
+            result = client.rollback(args.model, args.snapshot, args.reason)
+    except ClientError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_ERROR
+    if args.json:
+        _print_json(result)
+        return EXIT_OK
+    print(f"{result['model']}: baseline is now {result['baseline']} "
+          f"(was {result['previous'] or 'none'}; {result['cause']})")
+    return EXIT_OK
+
+
+def _state(value: dict[str, Any] | None) -> str:
+    if not value:
+        return "-"
+    return ", ".join(f"{k} {value[k] if value[k] is not None else 'none'}"
+                     for k in ("decision", "baseline", "reference") if k in value) or "-"
+
+
+def cmd_audit(args: argparse.Namespace) -> int:
+    from service.client import ClientError
+
+    try:
+        with _client(args) as client:
+            page = client.audit(model=args.model, limit=args.limit, cursor=args.cursor)
+    except ClientError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_ERROR
+    if args.json:
+        _print_json(page)
+        return EXIT_OK
+    for a in page["data"]:
+        print(f"{a['id']:>6}  {a['at']}  {a['actor']:<16} {a['action']:<18} "
+              f"{a['model'] or '-'}  {a['target'] or ''}")
+        print(f"        {_state(a['before'])} -> {_state(a['after'])}"
+              + (f"; reason: {a['reason']}" if a["reason"] else ""))
+    if page.get("next_cursor"):
+        print(f"more: tidegate audit --cursor {page['next_cursor']}"
+              + (f" --model {args.model}" if args.model else ""))
+    return EXIT_OK
+
+
 # --- demo -----------------------------------------------------------------------------------
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
-    from fastapi.testclient import TestClient
+    import warnings
+
+    with warnings.catch_warnings():  # the in-process client's transport notice is noise here
+        warnings.simplefilter("ignore")
+        from fastapi.testclient import TestClient
 
     from service import demo
     from service.app import create_app
@@ -293,6 +446,52 @@ def build_parser() -> argparse.ArgumentParser:
     remote(b)
     b.set_defaults(func=cmd_baseline_set)
 
+    p = sub.add_parser("replay", help="judge a model's past snapshots again under a policy")
+    p.add_argument("model")
+    p.add_argument("--policy", default=None, help="policy TOML file (default: the one in force)")
+    p.add_argument("--limit", type=int, default=100)
+    remote(p)
+    p.set_defaults(func=cmd_replay)
+
+    p = sub.add_parser("reference", help="pin or unpin a model's reference snapshot")
+    rsub = p.add_subparsers(dest="reference_action", required=True)
+    r = rsub.add_parser("pin", help="make SNAPSHOT the reference of MODEL")
+    r.add_argument("model")
+    r.add_argument("snapshot")
+    r.add_argument("--reason", required=True)
+    remote(r)
+    r.set_defaults(func=cmd_reference)
+    r = rsub.add_parser("unpin", help="drop MODEL's pinned reference (lag_hours applies again)")
+    r.add_argument("model")
+    r.add_argument("--reason", required=True)
+    remote(r)
+    r.set_defaults(func=cmd_reference)
+
+    p = sub.add_parser("models", help="every model: its baseline, last verdict, stuck or not")
+    remote(p)
+    p.set_defaults(func=cmd_models)
+
+    p = sub.add_parser("override", help="override a verdict's decision, with a reason")
+    p.add_argument("verdict", type=int, help="verdict id (tidegate history shows them)")
+    p.add_argument("--decision", choices=["promote", "hold"], required=True)
+    p.add_argument("--reason", required=True)
+    remote(p)
+    p.set_defaults(func=cmd_override)
+
+    p = sub.add_parser("rollback", help="make an earlier snapshot the baseline again")
+    p.add_argument("model")
+    p.add_argument("snapshot")
+    p.add_argument("--reason", required=True)
+    remote(p)
+    p.set_defaults(func=cmd_rollback)
+
+    p = sub.add_parser("audit", help="the audit log, newest first")
+    p.add_argument("--model", default=None)
+    p.add_argument("--limit", type=int, default=20)
+    p.add_argument("--cursor", default=None, help="continue from an earlier page")
+    remote(p)
+    p.set_defaults(func=cmd_audit)
+
     p = sub.add_parser("demo", help="load the invented bookshop scenario and serve it")
     p.add_argument("--db", default="tidegate-demo.db", help="SQLite file (recreated)")
     p.add_argument("--policies", default="config/policies")
@@ -305,7 +504,9 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    logging.basicConfig(level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s %(message)s")
+    logging.basicConfig(
+        level=logging.WARNING, format="%(asctime)s %(levelname)s %(name)s %(message)s"
+    )
     args = build_parser().parse_args(argv)
     try:
         return int(args.func(args))

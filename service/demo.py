@@ -6,8 +6,12 @@ returning) and ``device`` (app / web). Over the demo period a few bad pushes hap
 
 =============  ===========================================================================
 shelf-ranker   a broken feature join collapses the output; a calibration blow-up shifts every
-               score up; a push with NaN scores; a replayed job with a stale watermark
-also-read      a push whose reported recall@10 drops sharply
+               score up; a push with NaN scores; a replayed job with a stale watermark; from
+               a little past half-time a slow creep: every push nudges the scores up a
+               little (each step passes the baseline check; the reference check, the
+               baseline of 6 h ago, holds once the sum is too large, and the model sticks)
+also-read      a push whose reported recall@10 drops sharply; a push whose lists collapse
+               onto the bestsellers (coverage, Gini and popularity checks hold it)
 =============  ===========================================================================
 
 Everything is generated from fixed seeds; only the timestamps follow the clock (the scenario
@@ -85,6 +89,36 @@ class World:
         return _sigmoid(skill * truth + (1 - skill) * noise + bias)
 
 
+#: Books in the demo catalogue, and the panel of readers whose lists every snapshot scores.
+CATALOG = 400
+PANEL = 200
+LIST_K = 10
+#: Logit units the slow creep adds to every shelf-ranker push once it has started.
+CREEP_PER_STEP = 0.025
+
+
+class Shelves:
+    """Each panel reader's top-10 books: a score mixing a Zipf-like popularity with the
+    reader's own taste (``head_bias`` 0: taste only, 1: popularity only), plus a little
+    noise that differs from one retrain to the next."""
+
+    def __init__(self, seed: int) -> None:
+        rng = np.random.default_rng(seed)
+        popularity = 1.0 / np.arange(1, CATALOG + 1)
+        self.popularity = popularity / popularity.sum()
+        self.tastes = rng.dirichlet(np.full(CATALOG, 0.3), size=PANEL)
+
+    def lists(self, rng: np.random.Generator, *, head_bias: float) -> dict[str, list[Any]]:
+        mixed = head_bias * self.popularity + (1.0 - head_bias) * self.tastes
+        score = np.log(mixed) + rng.normal(0.0, 0.1, mixed.shape)
+        top = np.argsort(-score, axis=1)[:, :LIST_K]
+        return {
+            "group": [f"reader-{g:03d}" for g in range(PANEL) for _ in range(LIST_K)],
+            "item": [f"book-{i:03d}" for i in top.ravel()],
+            "rank": [r + 1 for _ in range(PANEL) for r in range(LIST_K)],
+        }
+
+
 def _body(
     key: str,
     parent: str | None,
@@ -94,6 +128,7 @@ def _body(
     scores: np.ndarray,
     baseline_scores: np.ndarray | None,
     extra_metrics: dict[str, float] | None = None,
+    extra_columns: dict[str, list[Any]] | None = None,
 ) -> dict[str, Any]:
     label = holdout["label"]
     finite = np.isfinite(scores)
@@ -110,6 +145,7 @@ def _body(
     }
     if baseline_scores is not None:
         sample["baseline_score"] = [round(float(s), 6) for s in baseline_scores]
+    sample.update(extra_columns or {})
     return {
         "key": key,
         "parent": parent,
@@ -134,6 +170,7 @@ def shelf_ranker(end: datetime, *, hours: int = 36, rows: int = 3000) -> Iterato
         (steps * 2) // 3: "nan",
         (steps * 5) // 6: "stale",
     }
+    creep_start = (steps * 11) // 20
     serving_skill, serving_bias = 0.80, 0.0
     parent: str | None = None
     for step in range(steps):
@@ -148,6 +185,10 @@ def shelf_ranker(end: datetime, *, hours: int = 36, rows: int = 3000) -> Iterato
             holdout["truth"], skill=serving_skill, bias=serving_bias, noise_seed=SEED
         )
         kind = bad.get(step, "")
+        if step >= creep_start:
+            bias += CREEP_PER_STEP  # the slow creep: a small step up on every push
+            scores = world.score(holdout["truth"], skill=skill, bias=bias, noise_seed=SEED)
+            kind = kind or "creep"
         if kind == "collapse":
             scores = 0.31 + rng.normal(0.0, 1e-8, rows)
         elif kind == "calibration":
@@ -158,19 +199,30 @@ def shelf_ranker(end: datetime, *, hours: int = 36, rows: int = 3000) -> Iterato
         elif kind == "stale":
             watermark = at - timedelta(hours=3)
         rows_trained = int(rng.normal(1_800_000, 60_000))
-        body = _body(key, parent, watermark, rows_trained, holdout, scores, baseline_scores)
+        # What serving logged for the baseline on the same rows: agrees with the offline
+        # recomputation up to rounding noise (no offline/online skew in the demo).
+        served = np.clip(baseline_scores + rng.normal(0.0, 2e-4, rows), 0.0, 1.0)
+        body = _body(
+            key, parent, watermark, rows_trained, holdout, scores, baseline_scores,
+            extra_columns={"served_score": [round(float(v), 6) for v in served]},
+        )
         yield DemoEvent("shelf-ranker", at, body, kind)
-        if not kind:
+        # The trainer goes on from its own last good state; during the creep that includes
+        # every creeping step, held or not (so a stuck model drifts further from its baseline).
+        if kind in ("", "creep"):
             serving_skill, serving_bias = skill, bias
             parent = key
 
 
-def also_read(end: datetime, *, hours: int = 36, rows: int = 2000) -> Iterator[DemoEvent]:
-    """The after-purchase recommender: one snapshot an hour for *hours* hours up to *end*."""
+def also_read(end: datetime, *, hours: int = 36) -> Iterator[DemoEvent]:
+    """The after-purchase recommender: one snapshot an hour for *hours* hours up to *end*;
+    its sample is the top-10 lists of a fixed panel of readers (group, item, rank)."""
     rng = np.random.default_rng(SEED + 1)
-    world = World(rng, rows)
+    world = World(rng, PANEL * LIST_K)
+    shelves = Shelves(SEED + 2)
     start = end - timedelta(hours=hours)
     drop_at = hours // 2
+    collapse_at = (hours * 3) // 4
     parent: str | None = None
     recall = 0.31
     for step in range(hours):
@@ -180,12 +232,17 @@ def also_read(end: datetime, *, hours: int = 36, rows: int = 2000) -> Iterator[D
         scores = world.score(holdout["truth"], skill=0.75, bias=-0.2, noise_seed=SEED + 1)
         step_recall = recall + rng.normal(0.0, 0.002)
         note = ""
+        head_bias = 0.3
         if step == drop_at:
             step_recall = recall * 0.9
             note = "recall-drop"
+        elif step == collapse_at:
+            head_bias = 0.95  # nearly every reader is shown the same bestsellers
+            note = "popularity-collapse"
         body = _body(
             key, parent, at - timedelta(minutes=2), int(rng.normal(420_000, 15_000)), holdout,
-            scores, None, {"recall_at_10": round(step_recall, 5)},
+            scores, None, {"recall_at_10": round(step_recall, 5), "catalog_size": CATALOG},
+            extra_columns=shelves.lists(rng, head_bias=head_bias),
         )
         yield DemoEvent("also-read", at, body, note)
         if not note:

@@ -11,7 +11,7 @@ import logging
 import time
 from collections.abc import Sequence
 from dataclasses import dataclass, field
-from datetime import datetime
+from datetime import datetime, timedelta
 
 from sqlalchemy.orm import Session
 
@@ -48,9 +48,62 @@ class Submitted:
     created: bool
 
 
-def resolve_reference(session: Session, *, model: ModelRow) -> SnapshotRow | None:
-    """The model's reference snapshot: the one an operator pinned, if any."""
-    return repo.snapshot_by_id(session, snapshot_id=model.reference_id)
+def resolve_reference(
+    session: Session, *, model: ModelRow, policy: Policy | None, now: datetime
+) -> SnapshotRow | None:
+    """The model's reference snapshot (rules in service/gate/reference.py): the one an
+    operator pinned; else, when the policy sets ``[reference] lag_hours``, the snapshot that
+    was the baseline that many hours ago; else none."""
+    pinned = repo.snapshot_by_id(session, snapshot_id=model.reference_id)
+    if pinned is not None:
+        return pinned
+    lag = policy.reference.lag_hours if policy is not None else None
+    if lag is None:
+        return None
+    # The SQL form of service.gate.reference.baseline_as_of.
+    row = repo.promotion_as_of(session, model_id=model.id, at=now - timedelta(hours=lag))
+    return session.get(SnapshotRow, row.snapshot_id) if row is not None else None
+
+
+def set_reference_by_hand(
+    session: Session,
+    *,
+    model_name: str,
+    key: str | None,
+    reason: str,
+    actor: str,
+    now: datetime,
+) -> tuple[SnapshotRow | None, SnapshotRow | None]:
+    """Pin snapshot *key* as the model's reference, or unpin (*key* None); audited.
+
+    Returns (new pinned snapshot, previously pinned snapshot).
+    """
+    from service.errors import InvalidInput, NotFound
+
+    if not reason.strip():
+        raise InvalidInput("a reason is required", field="reason")
+    model = repo.get_model(session, name=model_name, lock=True)
+    if model is None:
+        raise NotFound(f"no model {model_name!r}", field="model")
+    snapshot = None
+    if key is not None:
+        snapshot = repo.get_snapshot(session, model_id=model.id, key=key)
+        if snapshot is None:
+            raise NotFound(f"model {model_name!r} has no snapshot {key!r}", field="snapshot")
+    previous = repo.snapshot_by_id(session, snapshot_id=model.reference_id)
+    repo.set_reference(session, model=model, snapshot=snapshot)
+    repo.add_audit(
+        session,
+        actor=actor,
+        action="reference.pin" if snapshot is not None else "reference.unpin",
+        model=model_name,
+        target=key,
+        before={"reference": previous.key if previous else None},
+        after={"reference": key},
+        reason=reason,
+        now=now,
+    )
+    return snapshot, previous
 
 
 def submit(
@@ -95,7 +148,7 @@ def submit(
     reference_row: SnapshotRow | None = None
     started = time.perf_counter()
     try:
-        reference_row = resolve_reference(session, model=model)
+        reference_row = resolve_reference(session, model=model, policy=policy, now=now)
         candidate = Snapshot(
             model=model_name,
             key=post.key,
@@ -123,7 +176,11 @@ def submit(
             baseline=baseline,
             reference=reference,
             now=now,
-            history=repo.history(session, model_id=model.id, limit=history_limit),
+            history=repo.history(
+                session,
+                model_id=model.id,
+                limit=max(history_limit, policy.history_depth() if policy else 0),
+            ),
             baseline_since=repo.utc(model.baseline_since),
             known_keys=repo.known_keys(session, model_id=model.id),
         )
@@ -159,6 +216,17 @@ def submit(
         )
         verdict_row.moved_baseline = True
         session.flush()
+        repo.add_audit(
+            session,
+            actor="gate",
+            action="baseline.verdict",
+            model=model_name,
+            target=post.key,
+            before={"baseline": baseline_row.key if baseline_row else None},
+            after={"baseline": post.key, "verdict_id": verdict_row.id, "posted_by": actor},
+            reason="promoted by verdict",
+            now=now,
+        )
     return Submitted(model, snapshot_row, verdict_row, created=True)
 
 
@@ -184,6 +252,8 @@ def set_baseline_by_hand(
     if snapshot is None:
         raise NotFound(f"model {model_name!r} has no snapshot {key!r}", field="snapshot")
     previous = repo.snapshot_by_id(session, snapshot_id=model.baseline_id)
+    if previous is not None and previous.id == snapshot.id:
+        raise Conflict(f"{key!r} is already the baseline of {model_name!r}", field="snapshot")
     if cause == "manual" and previous is not None and previous.id != snapshot.id:
         if previous.created_at is not None and snapshot.created_at < previous.created_at:
             cause = "rollback"

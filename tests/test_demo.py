@@ -18,16 +18,31 @@ def test_demo_holds_the_bad_pushes(make_harness) -> None:  # type: ignore[no-unt
         r = h.post(event.model, event.body)
         assert r.status_code == 201, r.text
         decisions[(event.model, event.body["key"])] = (event.note, r.json())
-    planted = {k: v for k, v in decisions.items() if v[0]}
+    planted = {k: v for k, v in decisions.items() if v[0] and v[0] != "creep"}
     assert {note for note, _ in planted.values()} == {
         "collapse",
         "calibration",
         "nan",
         "stale",
         "recall-drop",
+        "popularity-collapse",
     }
     for (_model, _key), (note, verdict) in planted.items():
         assert verdict["decision"] == "hold", (note, verdict["reasons"])
+    collapse = next(v for note, v in decisions.values() if note == "popularity-collapse")
+    held_by = {f["check"] for f in collapse["findings"] if f["outcome"] == "breach"}
+    assert {"catalog-coverage", "exposure-gini", "shown-popularity"} <= held_by
+    # The slow creep: its first steps pass every check; later the reference check (the
+    # baseline of 6 h ago) holds it, and the model shows as stuck.
+    creep = [v for note, v in decisions.values() if note == "creep"]
+    first_hold = next(i for i, v in enumerate(creep) if v["decision"] == "hold")
+    assert first_hold >= 3
+    assert all(v["decision"] == "promote" for v in creep[:first_hold])
+    first = {f["check"]: f["outcome"] for f in creep[first_hold]["findings"]}
+    assert first["score-psi-vs-reference"] == "breach" and first["score-psi"] == "ok"
+    assert any(f["check"] == "history.stuck" for f in creep[-1]["findings"])
+    shelf = h.client.get("/v1/models/shelf-ranker").json()
+    assert shelf["stuck"]["stuck"] and "serving a baseline from" in shelf["stuck"]["message"]
     healthy = [v for note, v in decisions.values() if not note]
     false_holds = [v for v in healthy if v["decision"] == "hold"]
     # The invented scenario is meant to be calm between the planted faults.

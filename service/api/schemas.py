@@ -118,15 +118,29 @@ class VerdictList(BaseModel):
     next_cursor: str | None = None
 
 
+class StuckPublic(BaseModel):
+    """Whether the model is stuck behind repeated holds (policy ``[history]``)."""
+
+    stuck: bool
+    consecutive_holds: int
+    threshold: int
+    baseline_age_seconds: float | None = None
+    message: str
+
+
 class ModelPublic(BaseModel):
     name: str
     baseline: str | None = None
     baseline_since: str | None = None
     baseline_age_seconds: float | None = None
-    reference: str | None = None
+    reference: str | None = Field(None, description="The reference pinned by an operator.")
+    reference_lag_hours: float | None = Field(
+        None, description="Without a pinned reference: the baseline as of this many hours ago."
+    )
     last_verdict: VerdictSummary | None = None
     holds_24h: int
     consecutive_holds: int
+    stuck: StuckPublic
     created_at: str
 
 
@@ -171,6 +185,25 @@ class BaselinePublic(BaseModel):
     cause: str
 
 
+class ReferenceSet(BaseModel):
+    """Pin a stored snapshot as the model's reference, or unpin (``snapshot`` null)."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    snapshot: Key | None = Field(
+        description="Key of the snapshot to pin; null unpins (the policy's lag applies again)."
+    )
+    reason: Annotated[str, StringConstraints(min_length=1, max_length=2000)] = Field(
+        description="Why (kept in the audit log)."
+    )
+
+
+class ReferencePublic(BaseModel):
+    model: str
+    reference: str | None = None
+    previous: str | None = None
+
+
 class PolicyCheckPublic(BaseModel):
     name: str
     kind: str
@@ -195,6 +228,103 @@ class PolicyList(BaseModel):
     count: int
 
 
+class OverrideCreate(BaseModel):
+    """An operator's change of a verdict's decision."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    decision: Literal["promote", "hold"] = Field(description="The decision to put in force.")
+    reason: Annotated[str, StringConstraints(strip_whitespace=True, min_length=1,
+                                             max_length=2000)] = Field(
+        description="Why (required; kept with the override and in the audit log)."
+    )
+
+
+class OverrideResult(BaseModel):
+    override: OverridePublic
+    verdict: VerdictPublic
+    decision_before: Literal["promote", "hold"]
+    baseline_before: str | None = None
+    baseline_after: str | None = None
+    baseline_moved: bool
+    note: str
+
+
+class DistributionSide(BaseModel):
+    label: str
+    counts: list[float]
+    shares: list[float]
+    rows: int
+    finite: int
+    mean: float | None = None
+    source: Literal["sample", "summary", "paired"]
+
+
+class DistributionPublic(BaseModel):
+    edges: list[float]
+    candidate: DistributionSide | None = None
+    baseline: DistributionSide | None = None
+    notes: list[str] = Field(default_factory=list)
+
+
+class SnapshotBrief(BaseModel):
+    key: str
+    trained_until: str | None = None
+    code_version: str | None = None
+    rows_trained: int | None = None
+    sample_rows: int
+    sample_pruned: bool
+    metrics: dict[str, float]
+    score_mean: float | None = None
+    score_std: float | None = None
+    nonfinite: int | None = None
+    created_at: str | None = None
+
+
+class PromotionPublic(BaseModel):
+    id: int
+    snapshot: str | None = None
+    previous: str | None = None
+    cause: str
+    verdict_id: int | None = None
+    actor: str
+    reason: str
+    created_at: str
+
+
+class EvidencePublic(BaseModel):
+    verdict_id: int
+    model: str
+    snapshot: str
+    baseline: str | None = None
+    distribution: DistributionPublic
+    segments: list[dict[str, Any]]
+    finding_segments: list[dict[str, Any]]
+    candidate: SnapshotBrief
+    baseline_snapshot: SnapshotBrief | None = None
+    serving: str | None = None
+    candidate_serving: bool
+    promotions: list[PromotionPublic]
+
+
+class AuditPublic(BaseModel):
+    id: int
+    at: str
+    actor: str
+    action: str
+    model: str | None = None
+    target: str | None = None
+    before: dict[str, Any] | None = None
+    after: dict[str, Any] | None = None
+    reason: str
+
+
+class AuditList(BaseModel):
+    data: list[AuditPublic]
+    count: int
+    next_cursor: str | None = None
+
+
 class ErrorBody(BaseModel):
     code: str
     message: str
@@ -209,3 +339,35 @@ class ErrorResponse(BaseModel):
 class Health(BaseModel):
     status: Literal["ok", "not_ready"]
     detail: dict[str, Any] = Field(default_factory=dict)
+
+
+class ReplayRequest(BaseModel):
+    """Judge past snapshots again under a policy (the one in force when omitted)."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    policy: Annotated[str, StringConstraints(max_length=200_000)] | None = Field(
+        None, description="Policy TOML text to try; omitted: the policy in force."
+    )
+    limit: int = Field(100, ge=1, le=1000, description="How many of the latest verdicts.")
+
+
+class ReplayRow(BaseModel):
+    verdict_id: int
+    snapshot: str
+    created_at: str
+    baseline: str | None = None
+    decision: Literal["promote", "hold"]
+    effective_decision: Literal["promote", "hold"]
+    replay_decision: Literal["promote", "hold"]
+    replay_reasons: list[str]
+    changed: bool
+    sample_pruned: bool
+
+
+class ReplayPublic(BaseModel):
+    model: str
+    policy: str
+    policy_digest: str
+    summary: dict[str, Any]
+    data: list[ReplayRow]

@@ -6,8 +6,11 @@ Order of work:
 2. lineage findings (watermark advance, known parent);
 3. each policy check, against the baseline or the reference as its ``against`` key says;
    a check whose other snapshot does not exist is ``skipped``; a check that raises gives a
-   blocking breach naming the error (fail closed);
-4. the decision: ``hold`` when a blocking finding is a breach, when a blocking finding is
+   blocking breach naming the error (fail closed); a check with an ``adaptive`` table is then
+   judged again against the limit learned from history (:mod:`service.gate.adaptive`);
+4. the stuck finding: after ``history.stuck_after_holds`` holds in a row, an advisory finding
+   (it never holds by itself: holding because earlier snapshots were held would never end);
+5. the decision: ``hold`` when a blocking finding is a breach, when a blocking finding is
    inconclusive and the policy says ``on_inconclusive = "hold"``, or when this is the model's
    first snapshot and the policy says ``first_snapshot = "hold"``; else ``promote``.
 
@@ -20,10 +23,12 @@ from __future__ import annotations
 import dataclasses
 from collections.abc import Iterable
 
+from service.gate.adaptive import apply_adaptive
 from service.gate.checks import REGISTRY, CheckConfig, CheckContext
 from service.gate.checks.base import skipped
 from service.gate.checks.health import health_findings
 from service.gate.checks.lineage import lineage_findings
+from service.gate.history import stuck_state
 from service.gate.policy import Policy
 from service.gate.types import Finding, GateInput, Verdict
 
@@ -62,7 +67,48 @@ def _run_check(config: CheckConfig, inp: GateInput, policy: Policy) -> list[Find
                 details={"error": f"{type(exc).__name__}: {exc}"},
             )
         ]
+    if config.adaptive is not None:
+        rules = config.adaptive
+        side = config.adaptive_side()
+        alpha = getattr(config, "alpha", None)
+        produced = [
+            apply_adaptive(
+                f,
+                rules=rules,
+                side=side,
+                alpha=alpha if isinstance(alpha, float) else None,
+                history=inp.history,
+                now=inp.now,
+            )
+            if f.check == config.name
+            else f
+            for f in produced
+        ]
     return [_apply_blocking(f, config) for f in produced]
+
+
+def _stuck_findings(inp: GateInput, policy: Policy) -> list[Finding]:
+    state = stuck_state(
+        inp.history,
+        threshold=policy.history.stuck_after_holds,
+        baseline_since=inp.baseline_since,
+        now=inp.now,
+    )
+    if not state.stuck:
+        return []
+    return [
+        Finding(
+            check="history.stuck",
+            kind="history",
+            outcome="advisory",
+            statistic="consecutive_holds",
+            value=state.consecutive_holds,
+            limit=state.threshold,
+            message=state.message,
+            blocking=False,
+            details=state.to_dict(),
+        )
+    ]
 
 
 def _apply_blocking(finding: Finding, config: CheckConfig) -> Finding:
@@ -106,6 +152,7 @@ def evaluate(inp: GateInput, policy: Policy | None) -> Verdict:
     findings.extend(lineage_findings(policy.lineage, inp))
     for config in policy.checks:
         findings.extend(_run_check(config, inp, policy))
+    findings.extend(_stuck_findings(inp, policy))
     reasons = _reasons(findings, policy)
     if inp.baseline is None and policy.first_snapshot == "hold":
         reasons.append(

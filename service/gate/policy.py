@@ -22,6 +22,7 @@ from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
+from service.gate.adaptive import AdaptiveRules
 from service.gate.checks import REGISTRY, CheckConfig
 
 
@@ -74,6 +75,34 @@ class LineageRules(BaseModel):
     )
 
 
+class ReferenceRules(BaseModel):
+    """Which snapshot is the model's reference (the longer-term anchor against creep).
+
+    An operator's pinned reference always wins. Without one, ``lag_hours`` makes the reference
+    the snapshot that was the baseline that many hours ago; with neither there is no reference
+    and checks with ``against = "reference"`` are skipped.
+    """
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    lag_hours: float | None = Field(
+        None, gt=0, description="Reference: the baseline as of this many hours ago, unless pinned."
+    )
+
+
+class HistoryRules(BaseModel):
+    """Rules on the model's own verdict history."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    stuck_after_holds: int = Field(
+        4,
+        ge=0,
+        description="After this many holds in a row every verdict carries an advisory "
+        "finding and the model list shows the model as stuck; 0 turns it off.",
+    )
+
+
 class PolicyBody(BaseModel):
     """The top-level keys of a policy file (``checks`` is validated per kind)."""
 
@@ -94,6 +123,8 @@ class PolicyBody(BaseModel):
     seed: int = Field(20261201, description="Seed for resampling checks (bootstrap).")
     sample: SampleRules = Field(default_factory=SampleRules)
     lineage: LineageRules = Field(default_factory=LineageRules)
+    reference: ReferenceRules = Field(default_factory=ReferenceRules)
+    history: HistoryRules = Field(default_factory=HistoryRules)
     checks: list[dict[str, Any]] = Field(default_factory=list)
 
 
@@ -114,6 +145,23 @@ class Policy:
     sample: SampleRules
     lineage: LineageRules
     checks: tuple[CheckConfig, ...]
+    reference: ReferenceRules = ReferenceRules()
+    history: HistoryRules = HistoryRules()
+
+    def history_depth(self) -> int:
+        """How many recent verdicts the store should load as ``GateInput.history``.
+
+        Four times the largest history window of any check (held and excluded entries also
+        take room), at least ``stuck_after_holds`` and 50, at most 2000.
+        """
+        widest = 0
+        for check in self.checks:
+            if check.adaptive is not None:
+                widest = max(widest, check.adaptive.window)
+            window = getattr(check, "window", None)
+            if isinstance(window, int):
+                widest = max(widest, window)
+        return min(2000, max(50, 4 * widest, self.history.stuck_after_holds))
 
     def matches(self, model: str) -> bool:
         return any(fnmatch.fnmatchcase(model, pattern) for pattern in self.models)
@@ -191,6 +239,8 @@ def parse_policy(text: str, *, name: str, path: str = "") -> Policy:
         sample=body.sample,
         lineage=body.lineage,
         checks=tuple(checks),
+        reference=body.reference,
+        history=body.history,
     )
 
 
@@ -223,10 +273,13 @@ def describe_keys() -> Mapping[str, Mapping[str, str]]:
         "top": {
             name: field.description or ""
             for name, field in PolicyBody.model_fields.items()
-            if name not in {"sample", "lineage", "checks"}
+            if name not in {"sample", "lineage", "reference", "history", "checks"}
         },
         "sample": {n: f.description or "" for n, f in SampleRules.model_fields.items()},
         "lineage": {n: f.description or "" for n, f in LineageRules.model_fields.items()},
+        "reference": {n: f.description or "" for n, f in ReferenceRules.model_fields.items()},
+        "history": {n: f.description or "" for n, f in HistoryRules.model_fields.items()},
+        "adaptive": {n: f.description or "" for n, f in AdaptiveRules.model_fields.items()},
     }
     for kind, spec in sorted(REGISTRY.items()):
         sections[f"check:{kind}"] = {

@@ -377,6 +377,22 @@ def set_baseline(
     return promotion
 
 
+def promotion_as_of(session: Session, *, model_id: int, at: datetime) -> PromotionRow | None:
+    """The newest promotion at or before *at*: its snapshot was the baseline at that time."""
+    return session.scalars(
+        select(PromotionRow)
+        .where(PromotionRow.model_id == model_id, PromotionRow.created_at <= at)
+        .order_by(PromotionRow.created_at.desc(), PromotionRow.id.desc())
+        .limit(1)
+    ).first()
+
+
+def set_reference(session: Session, *, model: ModelRow, snapshot: SnapshotRow | None) -> None:
+    """Pin *snapshot* as the model's reference (None: unpin)."""
+    model.reference_id = snapshot.id if snapshot is not None else None
+    session.flush()
+
+
 def promotions(session: Session, *, model_id: int, limit: int = 100) -> Sequence[PromotionRow]:
     return session.scalars(
         select(PromotionRow)
@@ -409,21 +425,27 @@ def _promotion_state(session: Session, *, model_id: int) -> _Promoted:
     return _Promoted(ever, rolled_back)
 
 
-def history(session: Session, *, model_id: int, limit: int) -> tuple[HistoryEntry, ...]:
-    """The model's last *limit* verdicts, newest first, as the gate's history.
+def history(
+    session: Session, *, model_id: int, limit: int, before_id: int | None = None
+) -> tuple[HistoryEntry, ...]:
+    """The model's last *limit* verdicts (before verdict *before_id*, when given), newest
+    first, as the gate's history.
 
-    ``healthy``: the gate promoted it (not an overridden hold), it became the baseline, and it
-    was not the baseline that a rollback replaced.
+    ``healthy``: it ended as ``promote`` (by its verdict or an override), it became the
+    baseline, and it was not the baseline that a rollback replaced. Whether an overridden hold
+    counts towards learned limits is the gate's call (``decision`` stays the gate's own;
+    see service/gate/history.py).
     """
     if limit <= 0:
         return ()
-    rows = session.execute(
+    stmt = (
         select(VerdictRow, SnapshotRow)
         .join(SnapshotRow, SnapshotRow.id == VerdictRow.snapshot_id)
         .where(VerdictRow.model_id == model_id)
-        .order_by(VerdictRow.id.desc())
-        .limit(limit)
-    ).all()
+    )
+    if before_id is not None:
+        stmt = stmt.where(VerdictRow.id < before_id)
+    rows = session.execute(stmt.order_by(VerdictRow.id.desc()).limit(limit)).all()
     overrides = overrides_for(session, verdict_ids=[v.id for v, _ in rows])
     state = _promotion_state(session, model_id=model_id)
     entries = []
@@ -435,8 +457,7 @@ def history(session: Session, *, model_id: int, limit: int) -> tuple[HistoryEntr
             if isinstance(f, dict) and f.get("value") is not None
         }
         healthy = (
-            verdict.decision == "promote"
-            and effective == "promote"
+            effective == "promote"
             and snap.id in state.ever
             and snap.id not in state.rolled_back
         )
@@ -478,11 +499,19 @@ def add_audit(
 
 
 def list_audit(
-    session: Session, *, model: str | None = None, limit: int = 100, before_id: int | None = None
+    session: Session,
+    *,
+    model: str | None = None,
+    limit: int = 100,
+    before_id: int | None = None,
+    exclude_actor: str | None = None,
 ) -> Sequence[AuditRow]:
+    """Audit entries newest first (optionally of one model, without one actor's entries)."""
     stmt = select(AuditRow)
     if model is not None:
         stmt = stmt.where(AuditRow.model == model)
+    if exclude_actor is not None:
+        stmt = stmt.where(AuditRow.actor != exclude_actor)
     if before_id is not None:
         stmt = stmt.where(AuditRow.id < before_id)
     return session.scalars(stmt.order_by(AuditRow.id.desc()).limit(limit)).all()

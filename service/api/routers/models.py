@@ -8,30 +8,47 @@ from typing import Annotated, Literal
 from fastapi import APIRouter, Query
 
 from service import intake, views
-from service.api.deps import ClockDep, DbDep, PrincipalDep
+from service.api.deps import ClockDep, DbDep, PoliciesDep, PrincipalDep, SettingsDep
 from service.api.routers.snapshots import ERRORS, ModelPath
-from service.api.schemas import BaselinePublic, BaselineSet, ModelList, ModelPublic, VerdictList
-from service.errors import InvalidInput, NotFound
+from service.api.schemas import (
+    BaselinePublic,
+    BaselineSet,
+    ModelList,
+    ModelPublic,
+    ReferencePublic,
+    ReferenceSet,
+    ReplayPublic,
+    ReplayRequest,
+    VerdictList,
+)
+from service.errors import Forbidden, InvalidInput, NotFound
+from service.gate.policy import PolicyError, parse_policy, select_policy
+from service.replay import replay
 from service.store import repo
 
 router = APIRouter(prefix="/v1/models", tags=["models"])
 
 
 @router.get("", response_model=ModelList, summary="Every model with its baseline and last verdict")
-def list_models(db: DbDep, clock: ClockDep) -> dict[str, object]:
+def list_models(db: DbDep, clock: ClockDep, policies: PoliciesDep) -> dict[str, object]:
     now = clock()
     with db.transaction() as session:
-        data = [views.model_view(session, model=m, now=now) for m in repo.list_model_rows(session)]
+        data = [
+            views.model_view(session, model=m, now=now, policies=policies)
+            for m in repo.list_model_rows(session)
+        ]
     return {"data": data, "count": len(data)}
 
 
 @router.get("/{model}", response_model=ModelPublic, responses=ERRORS, summary="One model")
-def get_model(db: DbDep, clock: ClockDep, model: str = ModelPath) -> dict[str, object]:
+def get_model(
+    db: DbDep, clock: ClockDep, policies: PoliciesDep, model: str = ModelPath
+) -> dict[str, object]:
     with db.transaction() as session:
         row = repo.get_model(session, name=model)
         if row is None:
             raise NotFound(f"no model {model!r}", field="model")
-        return views.model_view(session, model=row, now=clock())
+        return views.model_view(session, model=row, now=clock(), policies=policies)
 
 
 @router.get(
@@ -85,6 +102,8 @@ def set_baseline(
     body: BaselineSet, db: DbDep, clock: ClockDep, principal: PrincipalDep,
     model: str = ModelPath,
 ) -> dict[str, object]:
+    if not principal.allows("operate", model):
+        raise Forbidden(f"{principal.name} may not set the baseline of {model!r}")
     with db.transaction() as session:
         _, snapshot, previous = intake.set_baseline_by_hand(
             session, model_name=model, key=body.snapshot, reason=body.reason,
@@ -96,4 +115,56 @@ def set_baseline(
         "baseline": snapshot.key,
         "previous": previous.key if previous else None,
         "cause": cause,
+    }
+
+
+@router.post(
+    "/{model}/replay",
+    response_model=ReplayPublic,
+    responses=ERRORS,
+    summary="Judge the model's past snapshots again under a policy; stores nothing",
+)
+def replay_model(
+    body: ReplayRequest,
+    db: DbDep,
+    policies: PoliciesDep,
+    settings: SettingsDep,
+    model: str = ModelPath,
+) -> dict[str, object]:
+    if body.policy is None:
+        policy = select_policy(policies, model)
+        if policy is None:
+            raise InvalidInput(f"no policy matches model {model!r}; send one", field="policy")
+    else:
+        try:
+            policy = parse_policy(body.policy, name="replay", path="(request)")
+        except PolicyError as exc:
+            raise InvalidInput(str(exc), field="policy", code="invalid_policy") from None
+    with db.transaction() as session:
+        result = replay(
+            session, model_name=model, policy=policy, limit=body.limit,
+            history_limit=settings.history_limit,
+        )
+    return result.to_dict()
+
+
+@router.put(
+    "/{model}/reference",
+    response_model=ReferencePublic,
+    responses=ERRORS,
+    summary="Pin a snapshot as the model's reference (the anchor against slow creep), or unpin",
+)
+def set_reference(
+    body: ReferenceSet, db: DbDep, clock: ClockDep, principal: PrincipalDep,
+    model: str = ModelPath,
+) -> dict[str, object]:
+    with db.transaction() as session:
+        pinned, previous = intake.set_reference_by_hand(
+            session, model_name=model, key=body.snapshot, reason=body.reason,
+            actor=principal.name, now=clock(),
+        )
+    return {
+        "model": model,
+        "reference": pinned.key if pinned else None,
+        "previous": previous.key if previous else None,
     }

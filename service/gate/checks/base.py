@@ -22,8 +22,9 @@ from dataclasses import dataclass
 from datetime import datetime
 from typing import TYPE_CHECKING, Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field
+from pydantic import BaseModel, ConfigDict, Field, model_validator
 
+from service.gate.adaptive import AdaptiveRules
 from service.gate.types import Finding, HistoryEntry, Snapshot
 
 if TYPE_CHECKING:
@@ -42,6 +43,32 @@ class CheckConfig(BaseModel):
         "baseline", description="Compare with the serving baseline or the longer-term reference."
     )
     description: str = Field("", description="Free text shown beside the finding.")
+    adaptive: AdaptiveRules | None = Field(
+        None, description="Learn the limit from earlier healthy promotions (see adaptive keys)."
+    )
+
+    @model_validator(mode="after")
+    def _adaptive_against_baseline(self) -> CheckConfig:
+        if self.adaptive is not None and self.against != "baseline":
+            raise ValueError(
+                "adaptive limits are learned from consecutive promotions, so they apply to "
+                "checks against the baseline only; a reference check keeps its static limit"
+            )
+        return self
+
+    def adaptive_side(self) -> Literal["upper", "lower"]:
+        """Which way a value is bad, for a learned limit: the ``adaptive.side`` key, else the
+        check's :meth:`bad_side`."""
+        if self.adaptive is not None and self.adaptive.side is not None:
+            return self.adaptive.side
+        return self.bad_side()
+
+    def bad_side(self) -> Literal["upper", "lower"]:
+        """``lower`` for a check with ``direction = "higher"`` (higher is better), else
+        ``upper``. Check kinds whose ``value`` is bad when low override this."""
+        if getattr(self, "direction", None) == "higher":
+            return "lower"
+        return "upper"
 
 
 @dataclass(frozen=True)

@@ -66,6 +66,10 @@ class PairedConfig(SegmentKeys):
             raise ValueError("'threshold' and 'top_k' go with statistic = 'churn'")
         return self
 
+    def bad_side(self) -> Literal["upper", "lower"]:
+        """A low rank correlation is bad; a high change or churn is bad (learned limits)."""
+        return "lower" if self.statistic == "spearman" else "upper"
+
 
 def _compute(
     config: PairedConfig,

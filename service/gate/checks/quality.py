@@ -115,6 +115,11 @@ class QualityConfig(CorrectedSegmentKeys):
             raise ValueError(f"rule {self.rule!r} needs a margin")
         if self.pairing == "paired" and self.against != "baseline":
             raise ValueError("pairing = 'paired' compares with the baseline (against = 'baseline')")
+        if self.adaptive is not None:
+            raise ValueError(
+                "quality decides on a confidence interval against its margin, not on a limit "
+                "learned from history; drop 'adaptive'"
+            )
         return self
 
 

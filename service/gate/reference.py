@@ -1,0 +1,70 @@
+"""Which snapshot is a model's reference: the longer-term anchor that catches slow creep. Pure.
+
+Many small steps that each pass the baseline check can add up to a large change. Checks with
+``against = "reference"`` compare the candidate with a reference snapshot instead:
+
+1. a reference **pinned** by an operator (``PUT /v1/models/{model}/reference``) always wins;
+2. otherwise, when the policy sets ``[reference] lag_hours = N``, the reference is the
+   snapshot that was the **baseline N hours ago** (the target of the newest promotion at or
+   before ``now - N h``), so it moves along with time, N hours behind;
+3. otherwise there is no reference, and reference checks are ``skipped``.
+
+A lagged reference catches any creep faster than its limit per N hours; a pinned one catches
+every creep since the pin, but must be moved by hand after an intended change.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from datetime import datetime, timedelta
+from typing import Literal
+
+
+@dataclass(frozen=True)
+class Promotion:
+    """A snapshot became the baseline at ``at`` (by verdict, override or rollback)."""
+
+    snapshot_key: str
+    at: datetime
+
+
+@dataclass(frozen=True)
+class ReferenceChoice:
+    """The chosen reference key (None: no reference) and how it was chosen."""
+
+    snapshot_key: str | None
+    source: Literal["pinned", "lag", "none"]
+    message: str
+
+
+def baseline_as_of(promotions: Sequence[Promotion], at: datetime) -> str | None:
+    """The key of the snapshot that was the baseline at time *at*, None if none was yet."""
+    best: Promotion | None = None
+    for promotion in promotions:
+        if promotion.at <= at and (best is None or promotion.at >= best.at):
+            best = promotion
+    return None if best is None else best.snapshot_key
+
+
+def choose_reference(
+    *,
+    pinned: str | None,
+    lag_hours: float | None,
+    promotions: Sequence[Promotion],
+    now: datetime,
+) -> ReferenceChoice:
+    """Apply the rules of the module docstring."""
+    if pinned is not None:
+        return ReferenceChoice(pinned, "pinned", f"reference {pinned!r} pinned by an operator")
+    if lag_hours is None:
+        return ReferenceChoice(None, "none", "no reference pinned and no lag_hours in the policy")
+    at = now - timedelta(hours=lag_hours)
+    key = baseline_as_of(promotions, at)
+    if key is None:
+        return ReferenceChoice(
+            None, "none", f"the model had no baseline {lag_hours:g} h ago ({at.isoformat()})"
+        )
+    return ReferenceChoice(
+        key, "lag", f"reference {key!r}: the baseline as of {lag_hours:g} h ago ({at.isoformat()})"
+    )
