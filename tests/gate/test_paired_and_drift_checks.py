@@ -197,3 +197,16 @@ def test_drift_segment_missing_on_the_other_side_is_reported() -> None:
         'kind = "drift"\nstatistic = "psi"\nmax = 0.1\nsegments = ["device"]',
     )
     assert f.outcome == "ok" and f.details["missing_segment_columns"] == ["device"]
+
+
+def test_adaptive_limits_side_and_refusal() -> None:
+    # Learned limits (the [checks.adaptive] table): a low rank correlation is the bad side;
+    # quality decides on an interval against a margin and refuses a learned limit.
+    spearman = policy('kind = "paired"\nstatistic = "spearman"\nmin = 0.5\n[checks.adaptive]\n')
+    assert spearman.checks[0].adaptive_side() == "lower"  # type: ignore[attr-defined]
+    churn = policy(
+        'kind = "paired"\nstatistic = "churn"\nthreshold = 0.5\nmax = 0.1\n[checks.adaptive]\n'
+    )
+    assert churn.checks[0].adaptive_side() == "upper"  # type: ignore[attr-defined]
+    with pytest.raises(PolicyError, match="drop 'adaptive'"):
+        policy('kind = "quality"\nmetric = "auc"\nmargin = 0.01\n[checks.adaptive]\n')
