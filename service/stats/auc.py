@@ -163,7 +163,7 @@ def sorted_placements(
     if starts.size < n:
         group = np.cumsum(new) - 1
         below_t, above_t = below_t[group], above_t[group]
-    return np.where(pos_sorted, below_t, above_t)
+    return np.asarray(np.where(pos_sorted, below_t, above_t), dtype=np.float64)
 
 
 def _row_placements(
