@@ -14,7 +14,7 @@ from service.api.auth import TokenGate
 from service.api.deps import Database
 from service.api.errors import install_error_handlers
 from service.api.middleware import BodyLimit, RequestContext
-from service.api.routers import health, models, snapshots, verdicts
+from service.api.routers import audit, health, models, overrides, snapshots, verdicts
 from service.api.routers import metrics as metrics_routes
 from service.api.routers import policies as policy_routes
 from service.api.routers import tokens as token_routes
@@ -22,6 +22,7 @@ from service.gate.policy import Policy, load_policies
 from service.metrics import Metrics
 from service.settings import Settings
 from service.store import db as store_db
+from service.web import routes as web_routes
 
 log = logging.getLogger("tidegate")
 
@@ -63,10 +64,12 @@ def create_app(
     app.state.clock = clock
     app.state.metrics = Metrics()
     install_error_handlers(app)
-    for module in (snapshots, models, verdicts, policy_routes, health):
+    for module in (snapshots, models, verdicts, overrides, audit, policy_routes, health):
         app.include_router(module.router)
     for module in (token_routes, metrics_routes):
         app.include_router(module.router)
+    app.include_router(web_routes.router)
+    app.include_router(web_routes.root)
     # Added last = outermost: RequestContext -> BodyLimit -> TokenGate -> routes.
     app.add_middleware(TokenGate, settings=settings, database=app.state.database)
     app.add_middleware(BodyLimit, limit=settings.max_body_bytes)

@@ -266,14 +266,24 @@ def cmd_why(args: argparse.Namespace) -> int:
     try:
         with _client(args) as client:
             verdict = _find_verdict(client, args.model, args.snapshot)
+            evidence = client.evidence(verdict["verdict_id"])
     except ClientError as exc:
         print(f"error: {exc}", file=sys.stderr)
         return EXIT_ERROR
     if args.json:
-        _print_json(verdict)
+        _print_json({"verdict": verdict, "evidence": evidence})
     else:
-        print(explain(verdict))
+        print(explain(verdict, evidence, ascii_only=_ascii_only()))
     return EXIT_OK
+
+
+def _ascii_only() -> bool:
+    """True when standard output cannot print the sparkline's block characters."""
+    try:
+        "▁█→×".encode(sys.stdout.encoding or "ascii")
+    except (UnicodeEncodeError, LookupError):
+        return True
+    return False
 
 
 def cmd_history(args: argparse.Namespace) -> int:
@@ -378,6 +388,74 @@ def cmd_models(args: argparse.Namespace) -> int:
         serving = f"{m['baseline'] or '-'} ({format_age(age)} ago)" if age is not None else "-"
         state = "STUCK: " + m["stuck"]["message"] if m["stuck"]["stuck"] else ""
         print(f"{m['name']:<20} baseline {serving:<36} last {last:<8} {state}".rstrip())
+    return EXIT_OK
+
+
+def cmd_override(args: argparse.Namespace) -> int:
+    from service.client import ClientError
+
+    try:
+        with _client(args) as client:
+            result = client.override(args.verdict, args.decision, args.reason)
+    except ClientError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_ERROR
+    if args.json:
+        _print_json(result)
+        return EXIT_OK
+    v, o = result["verdict"], result["override"]
+    print(f"{v['model']} {v['snapshot']} (verdict {v['verdict_id']}): "
+          f"{result['decision_before']} -> {o['decision']} by {o['actor']} at {o['created_at']}")
+    print(f"baseline: {result['baseline_before'] or 'none'} -> {result['baseline_after'] or 'none'}"
+          f"{'' if result['baseline_moved'] else ' (unchanged)'}")
+    print(result["note"])
+    return EXIT_OK
+
+
+def cmd_rollback(args: argparse.Namespace) -> int:
+    from service.client import ClientError
+
+    try:
+        with _client(args) as client:
+            result = client.rollback(args.model, args.snapshot, args.reason)
+    except ClientError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_ERROR
+    if args.json:
+        _print_json(result)
+        return EXIT_OK
+    print(f"{result['model']}: baseline is now {result['baseline']} "
+          f"(was {result['previous'] or 'none'}; {result['cause']})")
+    return EXIT_OK
+
+
+def _state(value: dict[str, Any] | None) -> str:
+    if not value:
+        return "-"
+    return ", ".join(f"{k} {value[k] if value[k] is not None else 'none'}"
+                     for k in ("decision", "baseline", "reference") if k in value) or "-"
+
+
+def cmd_audit(args: argparse.Namespace) -> int:
+    from service.client import ClientError
+
+    try:
+        with _client(args) as client:
+            page = client.audit(model=args.model, limit=args.limit, cursor=args.cursor)
+    except ClientError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_ERROR
+    if args.json:
+        _print_json(page)
+        return EXIT_OK
+    for a in page["data"]:
+        print(f"{a['id']:>6}  {a['at']}  {a['actor']:<16} {a['action']:<18} "
+              f"{a['model'] or '-'}  {a['target'] or ''}")
+        print(f"        {_state(a['before'])} -> {_state(a['after'])}"
+              + (f"; reason: {a['reason']}" if a["reason"] else ""))
+    if page.get("next_cursor"):
+        print(f"more: tidegate audit --cursor {page['next_cursor']}"
+              + (f" --model {args.model}" if args.model else ""))
     return EXIT_OK
 
 
@@ -542,6 +620,27 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("models", help="every model: its baseline, last verdict, stuck or not")
     remote(p)
     p.set_defaults(func=cmd_models)
+
+    p = sub.add_parser("override", help="override a verdict's decision, with a reason")
+    p.add_argument("verdict", type=int, help="verdict id (tidegate history shows them)")
+    p.add_argument("--decision", choices=["promote", "hold"], required=True)
+    p.add_argument("--reason", required=True)
+    remote(p)
+    p.set_defaults(func=cmd_override)
+
+    p = sub.add_parser("rollback", help="make an earlier snapshot the baseline again")
+    p.add_argument("model")
+    p.add_argument("snapshot")
+    p.add_argument("--reason", required=True)
+    remote(p)
+    p.set_defaults(func=cmd_rollback)
+
+    p = sub.add_parser("audit", help="the audit log, newest first")
+    p.add_argument("--model", default=None)
+    p.add_argument("--limit", type=int, default=20)
+    p.add_argument("--cursor", default=None, help="continue from an earlier page")
+    remote(p)
+    p.set_defaults(func=cmd_audit)
 
     p = sub.add_parser("demo", help="load the invented bookshop scenario and serve it")
     p.add_argument("--db", default="tidegate-demo.db", help="SQLite file (recreated)")

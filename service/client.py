@@ -113,3 +113,26 @@ class TidegateClient:
         return self.request(  # type: ignore[no-any-return]
             "PUT", f"/v1/models/{model}/reference", json={"snapshot": snapshot, "reason": reason}
         )
+
+    def override(self, verdict_id: int, decision: str, reason: str) -> dict[str, Any]:
+        """Put *decision* in force for a verdict, with a reason (audited)."""
+        return self.request(  # type: ignore[no-any-return]
+            "POST", f"/v1/verdicts/{verdict_id}/override",
+            json={"decision": decision, "reason": reason},
+        )
+
+    def rollback(self, model: str, snapshot: str, reason: str) -> dict[str, Any]:
+        """Make an earlier snapshot the baseline again (the same call as set_baseline)."""
+        return self.set_baseline(model, snapshot, reason)
+
+    def evidence(self, verdict_id: int, *, bins: int | None = None) -> dict[str, Any]:
+        """Both score distributions on common bins, the segment table, what changed."""
+        params = {"bins": bins} if bins is not None else {}
+        return self.request(  # type: ignore[no-any-return]
+            "GET", f"/v1/verdicts/{verdict_id}/evidence", params=params
+        )
+
+    def audit(self, **params: Any) -> dict[str, Any]:
+        """Audit entries newest first (params: model, limit, cursor)."""
+        clean = {k: v for k, v in params.items() if v is not None}
+        return self.request("GET", "/v1/audit", params=clean)  # type: ignore[no-any-return]

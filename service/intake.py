@@ -216,6 +216,17 @@ def submit(
         )
         verdict_row.moved_baseline = True
         session.flush()
+        repo.add_audit(
+            session,
+            actor="gate",
+            action="baseline.verdict",
+            model=model_name,
+            target=post.key,
+            before={"baseline": baseline_row.key if baseline_row else None},
+            after={"baseline": post.key, "verdict_id": verdict_row.id, "posted_by": actor},
+            reason="promoted by verdict",
+            now=now,
+        )
     return Submitted(model, snapshot_row, verdict_row, created=True)
 
 
@@ -241,6 +252,8 @@ def set_baseline_by_hand(
     if snapshot is None:
         raise NotFound(f"model {model_name!r} has no snapshot {key!r}", field="snapshot")
     previous = repo.snapshot_by_id(session, snapshot_id=model.baseline_id)
+    if previous is not None and previous.id == snapshot.id:
+        raise Conflict(f"{key!r} is already the baseline of {model_name!r}", field="snapshot")
     if cause == "manual" and previous is not None and previous.id != snapshot.id:
         if previous.created_at is not None and snapshot.created_at < previous.created_at:
             cause = "rollback"

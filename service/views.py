@@ -15,7 +15,14 @@ from sqlalchemy.orm import Session
 from service.gate.history import stuck_state
 from service.gate.policy import HistoryRules, Policy, select_policy
 from service.store import repo
-from service.store.tables import ModelRow, OverrideRow, SnapshotRow, VerdictRow
+from service.store.tables import (
+    AuditRow,
+    ModelRow,
+    OverrideRow,
+    PromotionRow,
+    SnapshotRow,
+    VerdictRow,
+)
 
 
 def iso(value: datetime | None) -> str | None:
@@ -143,4 +150,115 @@ def model_view(
         "consecutive_holds": holds,
         "stuck": stuck_state(holds, threshold=threshold, baseline_since=since, now=now).to_dict(),
         "created_at": iso(model.created_at),
+    }
+
+
+# --- on-call read models: evidence, promotions, audit ---------------------------------------
+
+
+def snapshot_brief(row: SnapshotRow | None) -> dict[str, Any] | None:
+    """What a person compares between candidate and baseline: lineage, volume, metrics."""
+    if row is None:
+        return None
+    summary = row.summary or {}
+    return {
+        "key": row.key,
+        "trained_until": iso(row.trained_until),
+        "code_version": row.code_version,
+        "rows_trained": row.rows_trained,
+        "sample_rows": row.sample_rows,
+        "sample_pruned": row.sample_pruned_at is not None,
+        "metrics": dict(row.metrics or {}),
+        "score_mean": summary.get("mean"),
+        "score_std": summary.get("std"),
+        "nonfinite": (summary["count"] - summary["finite"]) if summary else None,
+        "created_at": iso(row.created_at),
+    }
+
+
+def promotion_view(row: PromotionRow, keys: dict[int, str]) -> dict[str, Any]:
+    return {
+        "id": row.id,
+        "snapshot": keys.get(row.snapshot_id),
+        "previous": keys.get(row.previous_id) if row.previous_id is not None else None,
+        "cause": row.cause,
+        "verdict_id": row.verdict_id,
+        "actor": row.actor,
+        "reason": row.reason,
+        "created_at": iso(row.created_at),
+    }
+
+
+def promotions_view(session: Session, *, model: ModelRow, limit: int = 50) -> list[dict[str, Any]]:
+    """The model's baseline history, newest first."""
+    rows = repo.promotions(session, model_id=model.id, limit=limit)
+    ids = {r.snapshot_id for r in rows} | {r.previous_id for r in rows if r.previous_id}
+    keys = {s.id: s.key for s in (repo.snapshot_by_id(session, snapshot_id=i) for i in ids) if s}
+    return [promotion_view(r, keys) for r in rows]
+
+
+def audit_view(row: AuditRow) -> dict[str, Any]:
+    return {
+        "id": row.id,
+        "at": iso(row.at),
+        "actor": row.actor,
+        "action": row.action,
+        "model": row.model,
+        "target": row.target,
+        "before": row.before,
+        "after": row.after,
+        "reason": row.reason,
+    }
+
+
+def verdict_evidence(session: Session, *, verdict: VerdictRow, bins: int = 30) -> dict[str, Any]:
+    """The evidence behind a verdict for a person: both score distributions on common bins,
+    the per-segment table, what changed between baseline and candidate, and what serves now."""
+    from service import evidence
+
+    snapshot = repo.snapshot_by_id(session, snapshot_id=verdict.snapshot_id)
+    model = session.get(ModelRow, verdict.model_id)
+    assert snapshot is not None and model is not None
+    baseline = repo.snapshot_by_id(session, snapshot_id=verdict.baseline_id)
+    cand_sample = (
+        repo.load_sample(session, snapshot_id=snapshot.id)
+        if snapshot.sample_pruned_at is None else None
+    )
+    base_sample = (
+        repo.load_sample(session, snapshot_id=baseline.id)
+        if baseline is not None and baseline.sample_pruned_at is None else None
+    )
+    cand_side = None
+    if cand_sample is not None:
+        cand_side = evidence.SideInput(f"candidate {snapshot.key}", values=cand_sample.score)
+    elif snapshot.summary:
+        cand_side = evidence.SideInput(f"candidate {snapshot.key}", summary=snapshot.summary)
+    base_side = None
+    paired = cand_sample.column("baseline_score") if cand_sample is not None else None
+    if baseline is not None and base_sample is not None:
+        base_side = evidence.SideInput(f"baseline {baseline.key}", values=base_sample.score)
+    elif paired is not None:
+        base_side = evidence.SideInput("baseline (scores on the same rows)", values=paired,
+                                       source="paired")
+    elif baseline is not None and baseline.summary:
+        base_side = evidence.SideInput(f"baseline {baseline.key}", summary=baseline.summary)
+    dist = evidence.distribution(cand_side, base_side, bins=bins)
+    serving = repo.snapshot_by_id(session, snapshot_id=model.baseline_id)
+    promoted = [
+        p for p in promotions_view(session, model=model, limit=200)
+        if p["snapshot"] == snapshot.key or p["previous"] == snapshot.key
+    ]
+    return {
+        "verdict_id": verdict.id,
+        "model": model.name,
+        "snapshot": snapshot.key,
+        "baseline": baseline.key if baseline else None,
+        "distribution": dist.to_dict(),
+        "segments": evidence.segment_table(cand_sample, base_sample) if cand_sample else [],
+        "finding_segments": evidence.finding_segment_rows(verdict.findings),
+        "candidate": snapshot_brief(snapshot),
+        "baseline_snapshot": snapshot_brief(baseline),
+        "serving": serving.key if serving else None,
+        "candidate_serving": serving is not None and serving.id == snapshot.id,
+        "promotions": promoted,
     }

@@ -242,6 +242,103 @@ class PolicyList(BaseModel):
     count: int
 
 
+class OverrideCreate(BaseModel):
+    """An operator's change of a verdict's decision."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    decision: Literal["promote", "hold"] = Field(description="The decision to put in force.")
+    reason: Annotated[str, StringConstraints(strip_whitespace=True, min_length=1,
+                                             max_length=2000)] = Field(
+        description="Why (required; kept with the override and in the audit log)."
+    )
+
+
+class OverrideResult(BaseModel):
+    override: OverridePublic
+    verdict: VerdictPublic
+    decision_before: Literal["promote", "hold"]
+    baseline_before: str | None = None
+    baseline_after: str | None = None
+    baseline_moved: bool
+    note: str
+
+
+class DistributionSide(BaseModel):
+    label: str
+    counts: list[float]
+    shares: list[float]
+    rows: int
+    finite: int
+    mean: float | None = None
+    source: Literal["sample", "summary", "paired"]
+
+
+class DistributionPublic(BaseModel):
+    edges: list[float]
+    candidate: DistributionSide | None = None
+    baseline: DistributionSide | None = None
+    notes: list[str] = Field(default_factory=list)
+
+
+class SnapshotBrief(BaseModel):
+    key: str
+    trained_until: str | None = None
+    code_version: str | None = None
+    rows_trained: int | None = None
+    sample_rows: int
+    sample_pruned: bool
+    metrics: dict[str, float]
+    score_mean: float | None = None
+    score_std: float | None = None
+    nonfinite: int | None = None
+    created_at: str | None = None
+
+
+class PromotionPublic(BaseModel):
+    id: int
+    snapshot: str | None = None
+    previous: str | None = None
+    cause: str
+    verdict_id: int | None = None
+    actor: str
+    reason: str
+    created_at: str
+
+
+class EvidencePublic(BaseModel):
+    verdict_id: int
+    model: str
+    snapshot: str
+    baseline: str | None = None
+    distribution: DistributionPublic
+    segments: list[dict[str, Any]]
+    finding_segments: list[dict[str, Any]]
+    candidate: SnapshotBrief
+    baseline_snapshot: SnapshotBrief | None = None
+    serving: str | None = None
+    candidate_serving: bool
+    promotions: list[PromotionPublic]
+
+
+class AuditPublic(BaseModel):
+    id: int
+    at: str
+    actor: str
+    action: str
+    model: str | None = None
+    target: str | None = None
+    before: dict[str, Any] | None = None
+    after: dict[str, Any] | None = None
+    reason: str
+
+
+class AuditList(BaseModel):
+    data: list[AuditPublic]
+    count: int
+    next_cursor: str | None = None
+
+
 class ErrorBody(BaseModel):
     code: str
     message: str

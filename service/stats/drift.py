@@ -48,6 +48,10 @@ class KSResult:
     n_candidate: int
 
 
+#: Above this effective sample size the KS p-value uses Kolmogorov's limiting distribution.
+KS_LIMIT_ABOVE = 100_000
+
+
 def quantile_edges(baseline: np.ndarray, bins: int) -> np.ndarray:
     """Inner bin edges at the baseline's quantiles ``k / bins``, duplicates removed.
 
@@ -58,7 +62,18 @@ def quantile_edges(baseline: np.ndarray, bins: int) -> np.ndarray:
     return np.unique(np.quantile(baseline, levels))
 
 
-def psi(baseline: object, candidate: object, *, bins: int = 10, smoothing: float = 0.5) -> PSIResult:
+def binned_counts(values: np.ndarray, edges: np.ndarray, *, presorted: bool = False) -> np.ndarray:
+    """Counts per bin, bin k holding ``edges[k-1] < x <= edges[k]`` (as ``searchsorted``
+    with ``side="left"`` assigns them). From a sorted copy: B binary searches instead of n.
+    """
+    ordered = values if presorted else np.sort(values)
+    at_edges = np.searchsorted(ordered, edges, side="right")
+    return np.diff(np.concatenate(([0], at_edges, [ordered.size])))
+
+
+def psi(
+    baseline: object, candidate: object, *, bins: int = 10, smoothing: float = 0.5
+) -> PSIResult:
     """Population stability index of *candidate* against *baseline*.
 
     Parameters
@@ -98,10 +113,11 @@ def psi(baseline: object, candidate: object, *, bins: int = 10, smoothing: float
         raise ValueError(f"smoothing must be >= 0, got {smoothing!r}")
     base = finite_1d(baseline, "baseline", min_size=bins)
     cand = finite_1d(candidate, "candidate", min_size=bins)
+    base = np.sort(base)  # quantiles and counts are cheaper on sorted values
     edges = quantile_edges(base, bins)
     n_bins = edges.size + 1
-    base_counts = np.bincount(np.searchsorted(edges, base, side="left"), minlength=n_bins)
-    cand_counts = np.bincount(np.searchsorted(edges, cand, side="left"), minlength=n_bins)
+    base_counts = binned_counts(base, edges, presorted=True)
+    cand_counts = binned_counts(cand, edges)
     expected = (base_counts + smoothing) / (base.size + smoothing * n_bins)
     actual = (cand_counts + smoothing) / (cand.size + smoothing * n_bins)
     value = float(np.sum((actual - expected) * np.log(actual / expected)))
@@ -127,6 +143,26 @@ def psi_null_quantile(n: int, m: int, bins: int, q: float) -> float:
     return float((1.0 / n + 1.0 / m) * sps.chi2.ppf(q, bins - 1))
 
 
+def _ecdf_at_own_values(sorted_values: np.ndarray) -> np.ndarray:
+    """``#{v <= sorted_values[i]}`` for each i: the index after the last of i's tie run."""
+    n = sorted_values.size
+    last = np.empty(n, dtype=bool)
+    last[-1] = True
+    np.not_equal(sorted_values[1:], sorted_values[:-1], out=last[:-1])
+    ends = np.flatnonzero(last) + 1
+    if ends.size == n:  # no ties
+        return ends
+    # Each position takes the end of its tie run: runs are contiguous in sorted order.
+    return np.repeat(ends, np.diff(np.concatenate(([0], ends))))
+
+
+def _max_gap_at_own_values(a: np.ndarray, b: np.ndarray) -> float:
+    """``max_i |F_a(a_i) - F_b(a_i)|`` for sorted *a* and *b*."""
+    own = _ecdf_at_own_values(a) / a.size
+    other = np.searchsorted(b, a, side="right") / b.size
+    return float(np.max(np.abs(own - other)))
+
+
 def ks_2samp(baseline: object, candidate: object) -> KSResult:
     """Two-sample Kolmogorov–Smirnov test, two-sided [1].
 
@@ -139,23 +175,30 @@ def ks_2samp(baseline: object, candidate: object) -> KSResult:
     -------
     KSResult
         ``statistic`` is ``D = sup |F_n(x) - G_m(x)|``; ``pvalue`` is the survival function of
-        the two-sided one-sample KS distribution at ``D`` with ``round(n m / (n + m))``
-        observations, the asymptotic method scipy uses (``scipy.stats.ks_2samp(method='asymp')``).
+        the two-sided one-sample KS distribution at ``D`` with ``en = round(n m / (n + m))``
+        observations, the asymptotic method scipy uses (``scipy.stats.ks_2samp(method='asymp')``);
+        above ``en = 100,000`` the limit of that distribution, ``P(K > D sqrt(en))`` with K
+        Kolmogorov's distribution (relative difference below 1%, much faster).
 
     Notes
     -----
-    O((n + m) log(n + m)): both samples are sorted once and every value located in each by
-    binary search. For large samples the critical value at level 0.05 is close to
+    O((n + m) log(n + m)): both samples are sorted once, then each sample's values are located
+    in the other by binary search with sorted queries (scipy searches the pooled, unsorted
+    values instead). For large samples the critical value at level 0.05 is close to
     ``1.358 * sqrt((n + m) / (n m))`` (Smirnov's asymptotic table).
     """
     x = np.sort(finite_1d(baseline, "baseline"))
     y = np.sort(finite_1d(candidate, "candidate"))
     n, m = x.size, y.size
-    # Both ECDFs only change at sample values; evaluating at every value of both finds the sup.
-    grid = np.concatenate([x, y])
-    cdf_x = np.searchsorted(x, grid, side="right") / n
-    cdf_y = np.searchsorted(y, grid, side="right") / m
-    d = float(np.max(np.abs(cdf_x - cdf_y)))
+    # Both ECDFs only change at sample values, so the sup is attained at one of them. At x's
+    # own values F_n is known from the sort (ties: the last of each run), and G_m comes from a
+    # binary search with sorted queries; the same for y's values.
+    d = max(_max_gap_at_own_values(x, y), _max_gap_at_own_values(y, x))
     en = float(np.round(n * m / (n + m)))
-    pvalue = float(np.clip(sps.kstwo.sf(d, en), 0.0, 1.0))
+    if en > KS_LIMIT_ABOVE:
+        # Kolmogorov's limiting distribution [1]: scipy's exact-n kstwo.sf costs up to 0.5 s at
+        # en = 500,000 and differs from the limit by less than 1% (relative) above 100,000.
+        pvalue = float(np.clip(sps.kstwobign.sf(d * np.sqrt(en)), 0.0, 1.0))
+    else:
+        pvalue = float(np.clip(sps.kstwo.sf(d, en), 0.0, 1.0))
     return KSResult(statistic=d, pvalue=pvalue, n_baseline=n, n_candidate=m)

@@ -509,11 +509,19 @@ def add_audit(
 
 
 def list_audit(
-    session: Session, *, model: str | None = None, limit: int = 100, before_id: int | None = None
+    session: Session,
+    *,
+    model: str | None = None,
+    limit: int = 100,
+    before_id: int | None = None,
+    exclude_actor: str | None = None,
 ) -> Sequence[AuditRow]:
+    """Audit entries newest first (optionally of one model, without one actor's entries)."""
     stmt = select(AuditRow)
     if model is not None:
         stmt = stmt.where(AuditRow.model == model)
+    if exclude_actor is not None:
+        stmt = stmt.where(AuditRow.actor != exclude_actor)
     if before_id is not None:
         stmt = stmt.where(AuditRow.id < before_id)
     return session.scalars(stmt.order_by(AuditRow.id.desc()).limit(limit)).all()

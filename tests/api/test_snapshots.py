@@ -241,7 +241,10 @@ def test_set_baseline_by_hand_and_rollback(h: Harness) -> None:
     assert r.status_code == 200
     assert r.json() == {"model": "m", "baseline": "s1", "previous": "s2", "cause": "rollback"}
     assert h.client.get("/v1/models/m").json()["baseline"] == "s1"
-    assert count(h, "audit_log") == 1
+    # two promotions by the gate (s1, s2), then the rollback by hand
+    assert count(h, "audit_log") == 3
+    actions = [a["action"] for a in h.client.get("/v1/audit").json()["data"]]
+    assert actions == ["baseline.rollback", "baseline.verdict", "baseline.verdict"]
     r = h.client.put("/v1/models/m/baseline", json={"snapshot": "s1"})
     assert r.status_code == 422 and r.json()["error"]["field"] == "reason"
     r = h.client.put("/v1/models/m/baseline", json={"snapshot": "nope", "reason": "x"})

@@ -21,7 +21,7 @@ from service.api.schemas import (
     ReplayRequest,
     VerdictList,
 )
-from service.errors import InvalidInput, NotFound
+from service.errors import Forbidden, InvalidInput, NotFound
 from service.gate.policy import PolicyError, parse_policy, select_policy
 from service.replay import replay
 from service.store import repo
@@ -108,6 +108,8 @@ def set_baseline(
     body: BaselineSet, db: DbDep, clock: ClockDep, principal: OperatorDep,
     model: str = ModelPath,
 ) -> dict[str, object]:
+    if not principal.allows("operate", model):
+        raise Forbidden(f"{principal.name} may not set the baseline of {model!r}")
     with db.transaction() as session:
         _, snapshot, previous = intake.set_baseline_by_hand(
             session, model_name=model, key=body.snapshot, reason=body.reason,

@@ -1,0 +1,51 @@
+"""The audit log: every change of what serves and every operator action, newest first."""
+
+from __future__ import annotations
+
+from typing import Annotated, Any
+
+from fastapi import APIRouter, Query
+
+from service import views
+from service.api.deps import DbDep, PrincipalDep
+from service.api.routers.snapshots import ERRORS
+from service.api.schemas import AuditList
+from service.errors import Forbidden, InvalidInput
+from service.store import repo
+
+router = APIRouter(prefix="/v1/audit", tags=["audit"])
+
+
+RESPONSES: dict[int | str, dict[str, Any]] = {403: dict(ERRORS[404]), 422: dict(ERRORS[422])}
+
+
+@router.get("", response_model=AuditList, responses=RESPONSES,
+            summary="Audit entries newest first: who, what, when, before and after")
+def list_audit(
+    db: DbDep,
+    principal: PrincipalDep,
+    model: Annotated[str | None, Query(max_length=100, description="Only this model.")] = None,
+    limit: Annotated[int, Query(ge=1, le=500)] = 50,
+    cursor: Annotated[str | None, Query(max_length=100)] = None,
+) -> dict[str, object]:
+    if not principal.allows("read", model):
+        raise Forbidden(f"{principal.name} may not read the audit log"
+                        + (f" of {model!r}" if model else ""))
+    before_id = None
+    if cursor is not None:
+        try:
+            before_id = repo.decode_cursor(cursor)
+        except ValueError as exc:
+            raise InvalidInput(str(exc), field="query.cursor") from None
+    with db.transaction() as session:
+        rows = list(repo.list_audit(session, model=model, limit=limit + 1, before_id=before_id))
+    more = len(rows) > limit
+    rows = rows[:limit]
+    # entries of models outside the caller's scope are left out of the page
+    data = [views.audit_view(r) for r in rows
+            if r.model is None or principal.allows("read", r.model)]
+    return {
+        "data": data,
+        "count": len(data),
+        "next_cursor": repo.encode_cursor(rows[-1].id) if more and rows else None,
+    }

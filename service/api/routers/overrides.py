@@ -1,0 +1,65 @@
+"""Overriding a verdict, and the evidence behind it."""
+
+from __future__ import annotations
+
+from typing import Annotated, Any
+
+from fastapi import APIRouter, Query
+
+from service import operate, views
+from service.api.deps import ClockDep, DbDep, PrincipalDep
+from service.api.routers.snapshots import ERRORS
+from service.api.schemas import EvidencePublic, OverrideCreate, OverrideResult
+from service.errors import Forbidden
+
+router = APIRouter(prefix="/v1/verdicts", tags=["verdicts"])
+RESPONSES: dict[int | str, dict[str, Any]] = {code: dict(v) for code, v in ERRORS.items()}
+RESPONSES[403] = dict(ERRORS[404])
+
+
+@router.post(
+    "/{verdict_id}/override",
+    response_model=OverrideResult,
+    status_code=201,
+    responses=RESPONSES,
+    summary="Override a verdict's decision (audited; the verdict itself is kept as it was)",
+)
+def override(
+    verdict_id: int, body: OverrideCreate, db: DbDep, clock: ClockDep, principal: PrincipalDep
+) -> dict[str, object]:
+    with db.transaction() as session:
+        _, model = operate.verdict_with_model(session, verdict_id=verdict_id)
+        if not principal.allows("operate", model.name):
+            raise Forbidden(f"{principal.name} may not override verdicts of {model.name!r}")
+        outcome = operate.override_verdict(
+            session, verdict_id=verdict_id, decision=body.decision, reason=body.reason,
+            actor=principal.name, now=clock(),
+        )
+        return {
+            "override": views.override_view(outcome.override),
+            "verdict": views.verdict_detail(session, verdict=outcome.verdict),
+            "decision_before": outcome.decision_before,
+            "baseline_before": outcome.baseline_before,
+            "baseline_after": outcome.baseline_after,
+            "baseline_moved": outcome.baseline_moved,
+            "note": outcome.note,
+        }
+
+
+@router.get(
+    "/{verdict_id}/evidence",
+    response_model=EvidencePublic,
+    responses=RESPONSES,
+    summary="Score distributions on common bins, per-segment table, what changed, what serves",
+)
+def evidence(
+    verdict_id: int,
+    db: DbDep,
+    principal: PrincipalDep,
+    bins: Annotated[int, Query(ge=2, le=200, description="Bins of the distributions.")] = 30,
+) -> dict[str, object]:
+    with db.transaction() as session:
+        verdict, model = operate.verdict_with_model(session, verdict_id=verdict_id)
+        if not principal.allows("read", model.name):
+            raise Forbidden(f"{principal.name} may not read {model.name!r}")
+        return views.verdict_evidence(session, verdict=verdict, bins=bins)

@@ -1,0 +1,528 @@
+"""Quality from labels: compute a metric from the labelled sample and test its change.
+
+Kind ``quality``. The candidate's sample must carry ``label``. Two ways to compare:
+
+- **paired** (recommended): the sample also carries ``baseline_score``, the serving baseline's
+  scores of the same rows. The change is measured on identical rows and labels, so the noise of
+  the rows cancels and small changes are detectable.
+- **unpaired**: the baseline snapshot's own stored sample (its scores and labels) is the
+  comparison; only for ``against = "reference"`` or when ``baseline_score`` is absent.
+
+Decision rules, on the *gain* (the change oriented so that positive is better; see
+:data:`~service.gate.checks.comparisons.DIRECTION`) and a two-sided interval at ``confidence``:
+
+- ``non-inferiority``: ok when the interval's lower end is above ``-margin``; breach when its
+  upper end is below ``-margin`` (shown worse by more than the margin); otherwise inconclusive.
+- ``superiority``: ok when the lower end is above ``+margin``; breach when the upper end is
+  below it; otherwise inconclusive.
+- ``limit``: breach when the point estimate of the gain is below ``-margin``; no inconclusive.
+
+With segments, a unit is a breach when its p-value of "worse than the boundary", adjusted over
+the family of units (see :mod:`service.gate.checks.segments`), is below ``(1 - confidence) / 2``;
+it is ok when its own lower bound clears the boundary (every unit must: an intersection-union
+test, which needs no adjustment; Berger 1982); otherwise inconclusive.
+
+``max_gain`` (leak guard): a point gain above it is a breach. ``floor``/``ceiling`` bound the
+candidate's own value on all rows.
+"""
+
+from __future__ import annotations
+
+import zlib
+from dataclasses import dataclass
+from typing import Any, Literal
+
+import numpy as np
+from pydantic import Field, model_validator
+
+from service.gate.checks.base import CheckContext, register, skipped
+from service.gate.checks.comparisons import (
+    DIRECTION,
+    Comparison,
+    Options,
+    QualityMetric,
+    Side,
+    compare_paired,
+    compare_unpaired,
+    is_ranking,
+    label_of,
+    value_of,
+)
+from service.gate.checks.memo import codes_of, finite_rows, order_of, take
+from service.gate.checks.segments import (
+    ALL,
+    CorrectedSegmentKeys,
+    Unit,
+    kept_codes,
+    matching_rows,
+    split,
+    where,
+)
+from service.gate.types import Finding, Sample
+from service.stats.auc import AUCChange, delong_paired, has_ties
+from service.stats.delong_segments import delong_paired_by_value
+from service.stats.inference import (
+    BoundaryTest,
+    against_boundary,
+    minimum_detectable_effect,
+    normal_change,
+    oriented_interval,
+)
+from service.stats.multiple import adjust
+from service.stats.parallel import both
+
+
+class QualityConfig(CorrectedSegmentKeys):
+    kind: Literal["quality"]
+    metric: QualityMetric = Field(
+        description="auc, logloss, brier, calibration_ratio, ece, ndcg, recall, mrr or hit_rate."
+    )
+    k: int = Field(10, ge=1, le=10_000, description="Cut-off for ndcg, recall, mrr, hit_rate.")
+    gain: Literal["linear", "exponential"] = Field(
+        "linear", description="NDCG gain of a label: linear (rel) or exponential (2^rel - 1)."
+    )
+    bins: int = Field(10, ge=2, le=1000, description="Equal-mass bins for ece.")
+    rule: Literal["non-inferiority", "superiority", "limit"] = Field(
+        "non-inferiority", description="Decision rule on the change against the baseline."
+    )
+    margin: float | None = Field(
+        None,
+        ge=0,
+        description="Allowed worsening (non-inferiority, limit) or required gain (superiority).",
+    )
+    confidence: float = Field(
+        0.95, ge=0.5, lt=1, description="Two-sided confidence of the interval."
+    )
+    power: float = Field(0.8, gt=0, lt=1, description="Power for the minimum detectable effect.")
+    max_gain: float | None = Field(
+        None, gt=0, description="Leak guard: a gain above this is a breach."
+    )
+    floor: float | None = Field(None, description="Lowest acceptable candidate value (all rows).")
+    ceiling: float | None = Field(
+        None, description="Highest acceptable candidate value (all rows)."
+    )
+    pairing: Literal["auto", "paired", "unpaired"] = Field(
+        "auto", description="paired uses baseline_score on the same rows; auto prefers it."
+    )
+    method: Literal["auto", "bootstrap"] = Field(
+        "auto", description="auto: closed-form tests where they exist; bootstrap: always resample."
+    )
+    resamples: int = Field(1000, ge=10, le=100_000, description="Bootstrap resamples.")
+
+    @model_validator(mode="after")
+    def _consistent(self) -> QualityConfig:
+        if self.rule in ("non-inferiority", "limit") and self.margin is None:
+            raise ValueError(f"rule {self.rule!r} needs a margin")
+        if self.pairing == "paired" and self.against != "baseline":
+            raise ValueError("pairing = 'paired' compares with the baseline (against = 'baseline')")
+        if self.adaptive is not None:
+            raise ValueError(
+                "quality decides on a confidence interval against its margin, not on a limit "
+                "learned from history; drop 'adaptive'"
+            )
+        return self
+
+
+@dataclass(frozen=True)
+class UnitResult:
+    unit: Unit
+    rows: int
+    comparison: Comparison | None
+    tests: BoundaryTest | None
+    error: str | None = None
+
+
+def _boundary(config: QualityConfig) -> float:
+    margin = config.margin or 0.0
+    return margin if config.rule == "superiority" else -margin
+
+
+def _rng(ctx: CheckContext, config: QualityConfig, unit: Unit) -> np.random.Generator:
+    return np.random.default_rng([ctx.seed, zlib.crc32(f"{config.name}|{unit.label}".encode())])
+
+
+def _side(
+    sample: Sample, rows: np.ndarray | None, score_column: str, config: QualityConfig
+) -> Side:
+    groups = None
+    n_groups = 0
+    if is_ranking(config.metric):
+        column = sample.column("group")
+        assert column is not None
+        codes = codes_of(column, "group")
+        groups, n_groups = take(codes.codes, rows), codes.n_values
+    return Side(
+        label=take(sample.columns["label"], rows),
+        score=take(sample.columns[score_column], rows),
+        groups=groups,
+        n_groups=n_groups,
+    )
+
+
+def _finite(sample: Sample, columns: tuple[str, ...]) -> np.ndarray | None:
+    return finite_rows([sample.columns[name] for name in columns])
+
+
+def _subset(side: Side, rows: np.ndarray | None) -> Side:
+    if rows is None:
+        return side
+    return Side(
+        label=side.label[rows],
+        score=side.score[rows],
+        groups=None if side.groups is None else side.groups[rows],
+        n_groups=side.n_groups,
+    )
+
+
+def _fmt(x: float) -> str:
+    return f"{x:+.4g}"
+
+
+@register("quality", QualityConfig, family="quality", needs_other=False)
+def run_quality(config: QualityConfig, ctx: CheckContext) -> list[Finding]:
+    name = label_of(config.metric, config.k)
+    sample = ctx.candidate.sample
+    if sample is None or sample.column("label") is None:
+        return [
+            skipped(
+                config, f"{name}: the candidate's sample has no labels", statistic=config.metric
+            )
+        ]
+    if is_ranking(config.metric) and sample.column("group") is None:
+        return [
+            skipped(config, f"{name}: the sample has no 'group' column", statistic=config.metric)
+        ]
+    opts = Options(
+        metric=config.metric,
+        k=config.k,
+        gain=config.gain,
+        bins=config.bins,
+        confidence=config.confidence,
+        method=config.method,
+        resamples=config.resamples,
+    )
+    has_pairs = sample.column("baseline_score") is not None
+    other = ctx.other.sample if ctx.other is not None else None
+    paired = config.against == "baseline" and has_pairs and config.pairing != "unpaired"
+    if config.pairing == "paired" and not paired:
+        return [
+            skipped(
+                config,
+                f"{name}: pairing = 'paired' but the sample has no baseline_score",
+                statistic=config.metric,
+            )
+        ]
+    usable_other = (
+        other is not None
+        and other.column("label") is not None
+        and (not is_ranking(config.metric) or other.column("group") is not None)
+    )
+    columns = ("score", "label", "baseline_score") if paired else ("score", "label")
+    keep = _finite(sample, columns)
+    rows_used = len(sample) if keep is None else keep.size
+    cand_all = _side(sample, keep, "score", config)
+    if not paired and not usable_other:
+        return _floor_only(config, ctx, name, cand_all, opts)
+    layout = split(sample, config.segments, config.min_segment_rows, keep=keep)
+    if paired:
+        base_all = Side(
+            label=cand_all.label,
+            score=take(sample.columns["baseline_score"], keep),
+            groups=cand_all.groups,
+            n_groups=cand_all.n_groups,
+        )
+        other_keep = None
+    else:
+        assert other is not None
+        other_keep = _finite(other, ("score", "label"))
+        base_all = _side(other, other_keep, "score", config)
+    # Paired AUC: one sort per score serves all rows and every segment value.
+    fast: dict[str, Comparison | str] = {}
+    if paired and config.metric == "auc" and config.method == "auto":
+        fast = _paired_auc_units(sample, cand_all, base_all, layout.units, keep, opts, rows_used)
+    results: list[UnitResult] = []
+    for unit in layout.units:
+        rows = rows_used if unit.rows is None else unit.rows.size
+        try:
+            if unit.label in fast:
+                known = fast[unit.label]
+                if isinstance(known, str):
+                    raise ValueError(known)
+                comparison = known
+            elif paired:
+                cand = _subset(cand_all, unit.rows)
+                base = _subset(base_all, unit.rows)
+                comparison = compare_paired(cand, base, opts, _rng(ctx, config, unit))
+            else:
+                assert other is not None
+                cand = _subset(cand_all, unit.rows)
+                rows_other = matching_rows(other, unit, keep=other_keep)
+                base = _subset(base_all, rows_other)
+                comparison = compare_unpaired(cand, base, opts, _rng(ctx, config, unit))
+        except ValueError as exc:
+            if unit.label == ALL:
+                raise
+            results.append(UnitResult(unit, rows, None, None, error=str(exc)))
+            continue
+        sign = DIRECTION[config.metric]
+        tests = against_boundary(comparison.test, _boundary(config), sign=sign)
+        results.append(UnitResult(unit, rows, comparison, tests))
+    return [
+        _finding(
+            config,
+            name,
+            paired,
+            results,
+            layout.too_small,
+            layout.missing_columns,
+            rows_used,
+            len(sample),
+        )
+    ]
+
+
+def _paired_auc_units(
+    sample: Sample,
+    cand: Side,
+    base: Side,
+    units: list[Unit],
+    keep: np.ndarray | None,
+    opts: Options,
+    rows: int,
+) -> dict[str, Comparison | str]:
+    """Paired DeLong for every unit from one sort per score (see delong_segments)."""
+    order_c, order_b = both(lambda: order_of(cand.score), lambda: order_of(base.score), rows=rows)
+    ties = (has_ties(cand.score, order_c), has_ties(base.score, order_b))
+    positive = cand.label > 0
+    found: dict[str, AUCChange | str] = {
+        ALL: delong_paired(
+            None, cand.score, base.score, positive=positive, orders=(order_c, order_b), ties=ties
+        )
+    }
+    for column in sorted({u.column for u in units if u.column is not None}):
+        codes, n_values = kept_codes(sample, column, keep)
+        per_value = delong_paired_by_value(
+            positive, cand.score, base.score, (order_c, order_b), codes, n_values, ties=ties
+        )
+        for unit in units:
+            if unit.column == column and unit.index is not None:
+                found[unit.label] = per_value[unit.index]
+    out: dict[str, Comparison | str] = {}
+    for label, result in found.items():
+        if isinstance(result, str):
+            out[label] = result
+            continue
+        n = result.n_positive + result.n_negative
+        test = normal_change(
+            result.difference,
+            result.se,
+            confidence=opts.confidence,
+            method=result.method,
+            n_candidate=n,
+            n_baseline=n,
+        )
+        out[label] = Comparison(result.candidate, result.baseline, test, "rows")
+    return out
+
+
+def _floor_only(
+    config: QualityConfig, ctx: CheckContext, name: str, cand: Side, opts: Options
+) -> list[Finding]:
+    """No baseline to compare with: judge the candidate's own value against floor/ceiling."""
+    if config.floor is None and config.ceiling is None:
+        return [
+            skipped(
+                config,
+                f"{name}: no baseline_score and no {config.against} sample with labels "
+                "to compare with",
+                statistic=config.metric,
+            )
+        ]
+    value = value_of(cand, opts)
+    problems = _bounds(config, name, value)
+    return [
+        Finding(
+            check=config.name,
+            kind=config.kind,
+            outcome="breach" if problems else "ok",
+            statistic=config.metric,
+            candidate_value=value,
+            limit=config.floor if config.floor is not None else config.ceiling,
+            message="; ".join(problems)
+            or f"{name} {value:.4g} within bounds (nothing to compare with)",
+            blocking=config.blocking,
+            against=config.against,
+            details={"rows": int(cand.score.size), "mode": "candidate only"},
+        )
+    ]
+
+
+def _bounds(config: QualityConfig, name: str, value: float) -> list[str]:
+    problems = []
+    if config.floor is not None and value < config.floor:
+        problems.append(f"{name} {value:.4g} is below the floor {config.floor:g}")
+    if config.ceiling is not None and value > config.ceiling:
+        problems.append(f"{name} {value:.4g} is above the ceiling {config.ceiling:g}")
+    return problems
+
+
+def _outcome(config: QualityConfig, gain: float, p_above: float, p_below: float) -> str:
+    alpha = (1.0 - config.confidence) / 2.0
+    if config.max_gain is not None and gain > config.max_gain:
+        return "leak"
+    if config.rule == "limit":
+        return "breach" if gain < _boundary(config) else "ok"
+    if p_above < alpha:
+        return "ok"
+    if p_below < alpha:
+        return "breach"
+    return "inconclusive"
+
+
+def _finding(
+    config: QualityConfig,
+    name: str,
+    paired: bool,
+    results: list[UnitResult],
+    too_small: list[dict[str, object]],
+    missing: list[str],
+    rows_used: int,
+    rows_total: int,
+) -> Finding:
+    sign = DIRECTION[config.metric]
+    ran = [r for r in results if r.comparison is not None and r.tests is not None]
+    # Claims of a regression are adjusted over the family (they hold the push); "ok" needs every
+    # unit shown within the margin, an intersection-union test that needs no adjustment
+    # (Berger 1982), so the raw p-values decide it.
+    p_above = [r.tests.p_above for r in ran]  # type: ignore[union-attr]
+    p_below = adjust([r.tests.p_below for r in ran], config.correction)  # type: ignore[union-attr]
+    table: list[dict[str, Any]] = []
+    verdicts: dict[str, str] = {}
+    for r, pa, pb in zip(ran, p_above, p_below, strict=True):
+        assert r.comparison is not None and r.tests is not None
+        c = r.comparison
+        low, high = oriented_interval(c.test, sign)
+        gain = sign * c.test.estimate
+        verdict = _outcome(config, gain, float(pa), float(pb))
+        verdicts[r.unit.label] = verdict
+        table.append(
+            {
+                "segment": r.unit.label,
+                "rows": r.rows,
+                "n": c.test.n_candidate,
+                "counts": c.units,
+                "candidate": c.candidate_value,
+                "baseline": c.baseline_value,
+                "change": c.test.estimate,
+                "interval": list(c.test.interval),
+                "pvalue": r.tests.p_above if config.rule != "limit" else c.test.pvalue,
+                "p_worse": r.tests.p_below,
+                "p_worse_adjusted": float(pb),
+                "gain_interval": [low, high],
+                "outcome": verdict if verdict != "leak" else "breach",
+            }
+        )
+    for r in results:
+        if r.comparison is None:
+            table.append(
+                {"segment": r.unit.label, "rows": r.rows, "outcome": "skipped", "error": r.error}
+            )
+    whole = ran[0]
+    assert whole.unit.label == ALL and whole.comparison is not None and whole.tests is not None
+    test = whole.comparison.test
+    gain = sign * test.estimate
+    mde = minimum_detectable_effect(test.se, confidence=config.confidence, power=config.power)
+    boundary = _boundary(config)
+    limit = sign * boundary  # the boundary in the metric's own units
+    problems = _bounds(config, name, whole.comparison.candidate_value)
+    leaks = [label for label, v in verdicts.items() if v == "leak"]
+    breaches = [label for label, v in verdicts.items() if v == "breach"]
+    unsure = [label for label, v in verdicts.items() if v == "inconclusive"]
+    conf = f"{config.confidence:.0%}"
+    low, high = test.interval
+    what = "change" if config.metric != "calibration_ratio" else "change in distance from 1"
+    head = (
+        f"{name} {whole.comparison.candidate_value:.4g} vs {config.against} "
+        f"{whole.comparison.baseline_value:.4g} ({'paired' if paired else 'unpaired'}, "
+        f"{test.n_candidate} {whole.comparison.units}): {what} {_fmt(test.estimate)}, "
+        f"{conf} CI [{_fmt(low)}, {_fmt(high)}]"
+    )
+    if leaks:
+        outcome = "breach"
+        tail = f"gain above max_gain {config.max_gain:g}{where(leaks)}: a label may have leaked"
+    elif problems or breaches:
+        outcome = "breach"
+        parts = list(problems)
+        if breaches:
+            parts.append(_breach_text(config, breaches))
+        tail = "; ".join(parts)
+    elif unsure:
+        outcome = "inconclusive"
+        tail = (
+            f"cannot tell against the margin {config.margin or 0:g}{where(unsure)}: the "
+            f"interval straddles it (detectable change at this size: {mde:.3g})"
+        )
+    else:
+        outcome = "ok"
+        tail = _ok_text(config)
+    details: dict[str, Any] = {
+        "rule": config.rule,
+        "margin": config.margin,
+        "confidence": config.confidence,
+        "method": test.method,
+        "mode": "paired" if paired else "unpaired",
+        "mde": mde,
+        "power": config.power,
+        "null": _null_text(config),
+        "p_worse": whole.tests.p_below,
+        "gain": gain,
+        "rows_used": rows_used,
+        "rows_dropped": rows_total - rows_used,
+        "correction": config.correction if len(ran) > 1 else None,
+        "segments": table if len(results) > 1 or too_small else [],
+        "too_small": too_small,
+        "missing_segment_columns": missing,
+    }
+    if config.max_gain is not None:
+        details["max_gain"] = config.max_gain
+    return Finding(
+        check=config.name,
+        kind=config.kind,
+        outcome=outcome,  # type: ignore[arg-type]
+        statistic=f"{config.metric} change",
+        value=test.estimate,
+        limit=limit,
+        pvalue=whole.tests.p_above if config.rule != "limit" else test.pvalue,
+        baseline_value=whole.comparison.baseline_value,
+        candidate_value=whole.comparison.candidate_value,
+        interval=test.interval,
+        message=f"{head}; {tail}",
+        blocking=config.blocking,
+        against=config.against,
+        details=details,
+    )
+
+
+def _breach_text(config: QualityConfig, units: list[str]) -> str:
+    place = where(units)
+    if config.rule == "non-inferiority":
+        return f"worse than the {config.against} by more than the margin {config.margin:g}{place}"
+    if config.rule == "superiority":
+        return f"shown not better than the {config.against} by {config.margin or 0:g}{place}"
+    return f"point estimate worse than the {config.against} by more than {config.margin:g}{place}"
+
+
+def _ok_text(config: QualityConfig) -> str:
+    if config.rule == "non-inferiority":
+        return f"non-inferior within the margin {config.margin:g}"
+    if config.rule == "superiority":
+        return f"better than the {config.against} by more than {config.margin or 0:g}"
+    return f"within the limit {config.margin:g}"
+
+
+def _null_text(config: QualityConfig) -> str:
+    if config.rule == "non-inferiority":
+        return "pvalue tests H0: the candidate is worse by at least the margin"
+    if config.rule == "superiority":
+        return "pvalue tests H0: the candidate is not better by more than the margin"
+    return "pvalue tests H0: no change (two-sided)"

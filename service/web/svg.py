@@ -1,0 +1,377 @@
+"""Charts as inline SVG, drawn on the server: no JavaScript, no files to fetch, work offline.
+
+Four drawings, each a function returning :class:`markupsafe.Markup`:
+
+* :func:`histogram_overlay`: two score distributions on common bins, as shares of rows
+  (so samples of different sizes compare), with each side's mean marked;
+* :func:`trend_chart`: one statistic over a model's timeline with its limit drawn as a
+  (possibly moving) dashed line, and fixed bands such as a floor;
+* :func:`decision_strip`: one square per verdict, coloured by the decision in force, ringed when
+  overridden, each a link;
+* :func:`limit_gauge`: a small bar of a finding's value against its limit.
+
+Colours come from CSS classes (``tg-cand``, ``tg-base``, ``tg-hold``, ...) set in the page's
+style sheet; every text is escaped. Coordinates are rounded to 0.1 px.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+from markupsafe import Markup, escape
+
+from service.web.format import num, pct
+
+
+@dataclass(frozen=True)
+class Scale:
+    """Linear map from the domain [d0, d1] to the range [r0, r1]."""
+
+    d0: float
+    d1: float
+    r0: float
+    r1: float
+
+    def __call__(self, value: float) -> float:
+        if self.d1 == self.d0:
+            return (self.r0 + self.r1) / 2
+        return self.r0 + (value - self.d0) / (self.d1 - self.d0) * (self.r1 - self.r0)
+
+
+@dataclass(frozen=True)
+class Box:
+    """The plot area inside a drawing of *width* x *height* with the given margins."""
+
+    width: float
+    height: float
+    left: float = 48
+    right: float = 14
+    top: float = 14
+    bottom: float = 30
+
+    @property
+    def x0(self) -> float:
+        return self.left
+
+    @property
+    def x1(self) -> float:
+        return self.width - self.right
+
+    @property
+    def y0(self) -> float:  # bottom of the plot area (SVG y grows downwards)
+        return self.height - self.bottom
+
+    @property
+    def y1(self) -> float:
+        return self.top
+
+
+#: Estimated width of one legend character in px (12 px bold sans), to lay legends out.
+LEGEND_CHAR = 7.4
+
+
+def r(value: float) -> str:
+    """A coordinate, rounded to 0.1 px."""
+    text = f"{value:.1f}"
+    return text[:-2] if text.endswith(".0") else text
+
+
+def nice_ticks(lo: float, hi: float, count: int = 5) -> list[float]:
+    """Round tick values (1, 2 or 5 times a power of ten apart) covering [lo, hi]."""
+    if not (math.isfinite(lo) and math.isfinite(hi)):
+        return []
+    if hi < lo:
+        lo, hi = hi, lo
+    if hi == lo:
+        return [lo]
+    raw = (hi - lo) / max(count, 1)
+    power = 10 ** math.floor(math.log10(raw))
+    step = next(m * power for m in (1, 2, 5, 10) if m * power >= raw)
+    first = math.ceil(lo / step - 1e-9) * step
+    ticks = []
+    value = first
+    while value <= hi + step * 1e-9:
+        ticks.append(round(value, 12) + 0.0)
+        value += step
+    return ticks
+
+
+def _svg(width: float, height: float, title: str, body: list[str], css: str = "") -> Markup:
+    cls = f"tg-chart {css}".strip()
+    return Markup(
+        f'<svg xmlns="http://www.w3.org/2000/svg" class="{cls}" viewBox="0 0 {r(width)} '
+        f'{r(height)}" width="{r(width)}" height="{r(height)}" role="img">'
+        f"<title>{escape(title)}</title>" + "".join(body) + "</svg>"
+    )
+
+
+def _text(x: float, y: float, text: str, cls: str = "tg-label", anchor: str = "middle") -> str:
+    return (f'<text x="{r(x)}" y="{r(y)}" class="{cls}" text-anchor="{anchor}">'
+            f"{escape(text)}</text>")
+
+
+# --- distributions --------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Series:
+    """One side of an overlay: a label, shares per bin (summing to 1), its mean and CSS class."""
+
+    label: str
+    shares: Sequence[float]
+    css: str
+    mean: float | None = None
+
+
+def histogram_overlay(
+    edges: Sequence[float],
+    series: Sequence[Series],
+    *,
+    width: float = 1080,
+    height: float = 300,
+    x_label: str = "score",
+) -> Markup:
+    """Bars of each series' share per bin, later series drawn over earlier ones, on one y
+    scale (the largest share of any series). Bar heights are proportional to shares."""
+    box = Box(width, height, top=34)
+    if len(edges) < 2 or not series:
+        return _svg(width, height, "no distribution to draw",
+                    [_text(width / 2, height / 2, "no finite scores to draw")])
+    top_share = max((max(s.shares, default=0.0) for s in series), default=0.0) or 1.0
+    ticks_y = nice_ticks(0.0, top_share, 4)
+    if len(ticks_y) >= 2 and ticks_y[-1] < top_share:  # end the axis on a round tick
+        ticks_y.append(ticks_y[-1] + (ticks_y[1] - ticks_y[0]))
+    y_max = max(top_share, ticks_y[-1] if ticks_y else top_share)
+    xs = Scale(edges[0], edges[-1], box.x0, box.x1)
+    ys = Scale(0.0, y_max, box.y0, box.y1)
+    body: list[str] = []
+    for t in ticks_y:
+        body.append(f'<line class="tg-grid" x1="{r(box.x0)}" x2="{r(box.x1)}" y1="{r(ys(t))}" '
+                    f'y2="{r(ys(t))}"/>')
+        body.append(_text(box.x0 - 6, ys(t) + 4, pct(t, 0), anchor="end"))
+    for t in nice_ticks(edges[0], edges[-1], 6):
+        body.append(f'<line class="tg-axis" x1="{r(xs(t))}" x2="{r(xs(t))}" y1="{r(box.y0)}" '
+                    f'y2="{r(box.y0 + 4)}"/>')
+        body.append(_text(xs(t), box.y0 + 16, num(t, 3)))
+    body.append(_text((box.x0 + box.x1) / 2, height - 2, x_label, "tg-label tg-muted"))
+    for s in series:
+        body.append(f'<g class="tg-bars {s.css}">')
+        for i, share in enumerate(s.shares):
+            x, x_next = xs(edges[i]), xs(edges[i + 1])
+            h = box.y0 - ys(share)
+            body.append(
+                f'<rect x="{r(x)}" y="{r(box.y0 - h)}" width="{r(max(x_next - x - 0.5, 0.5))}" '
+                f'height="{r(h)}" data-share="{share:.6g}"><title>{escape(s.label)}: '
+                f"{escape(pct(share))} of rows in {escape(num(edges[i]))} to "
+                f"{escape(num(edges[i + 1]))}</title></rect>"
+            )
+        body.append("</g>")
+    for s in series:
+        if s.mean is not None and edges[0] <= s.mean <= edges[-1]:
+            x = xs(s.mean)
+            body.append(f'<line class="tg-mean {s.css}" x1="{r(x)}" x2="{r(x)}" '
+                        f'y1="{r(box.y0)}" y2="{r(box.y1)}"/>')
+    body.append(f'<line class="tg-axis" x1="{r(box.x0)}" x2="{r(box.x1)}" y1="{r(box.y0)}" '
+                f'y2="{r(box.y0)}"/>')
+    x = box.x0
+    for s in series:  # legend, top left, one row
+        text = s.label + (f" (mean {num(s.mean)})" if s.mean is not None else "")
+        body.append(f'<rect class="tg-swatch {s.css}" x="{r(x)}" y="8" width="12" '
+                    f'height="12"/>')
+        body.append(_text(x + 17, 18, text, "tg-legend", "start"))
+        x += 34 + LEGEND_CHAR * len(text)
+    return _svg(width, height, "Score distributions: " + ", ".join(s.label for s in series),
+                body, "tg-hist")
+
+
+# --- trends ---------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class TrendPoint:
+    """One verdict on a trend: its value, the limit it was held to, and how it ended."""
+
+    label: str
+    value: float | None
+    limit: float | None = None
+    breach: bool = False
+    held: bool = False
+    href: str | None = None
+    note: str = ""
+
+
+def core_range(values: Sequence[float], fixed: Sequence[float]) -> tuple[float, float, bool]:
+    """The y range of a trend: every value and fixed line (limits, bands), unless a few values
+    lie far outside the bulk; then the range covers the fixed lines and the middle 80 % of the
+    values widened by 1.5 times their spread, and those values are drawn off the scale.
+    Returns (low, high, clipped)."""
+    everything = list(values) + list(fixed)
+    lo, hi = min(everything), max(everything)
+    ordered = sorted(values)
+    k = len(ordered) // 10
+    middle = ordered[k: len(ordered) - k] if len(ordered) >= 10 else ordered
+    core_lo, core_hi = min(list(middle) + list(fixed)), max(list(middle) + list(fixed))
+    spread = core_hi - core_lo
+    if spread <= 0:
+        spread = max(abs(core_hi) * 0.05, 1e-6)
+    # clip only when an outlier sits more than 4 spreads outside the core (common practice,
+    # no source: keeps a single blow-up from flattening every other verdict)
+    if hi - core_hi > 4 * spread or core_lo - lo > 4 * spread:
+        return (max(lo, core_lo - 1.5 * spread), min(hi, core_hi + 1.5 * spread), True)
+    return lo, hi, False
+
+
+def trend_chart(
+    points: Sequence[TrendPoint],
+    *,
+    title: str,
+    width: float = 540,
+    height: float = 200,
+    bands: Sequence[tuple[str, float]] = (),
+    limit_label: str = "limit",
+) -> Markup:
+    """The values as a line with a dot per verdict (filled brick when the check breached,
+    ringed when the verdict was held for any reason), the per-verdict limit as a dashed step
+    line, and each band (label, value) as a dotted horizontal line. Gaps where a value is
+    missing break the line. Points are evenly spaced in time order. A value far outside the
+    rest is drawn as a triangle on the edge, its value in its tooltip (see :func:`core_range`).
+    """
+    box = Box(width, height, left=56, top=28, bottom=24)
+    values = [p.value for p in points if p.value is not None]
+    limits = [p.limit for p in points if p.limit is not None]
+    if not values:
+        return _svg(width, height, title, [_text(box.x0, 16, title, "tg-legend", "start"),
+                                           _text(width / 2, height / 2, "no values yet",
+                                                 "tg-label tg-muted")], "tg-trend")
+    lo, hi, clipped = core_range(values, limits + [b[1] for b in bands])
+    pad = (hi - lo) * 0.08 or max(abs(hi) * 0.05, 1e-6)
+    lo, hi = lo - pad, hi + pad
+    n = len(points)
+    xs = Scale(0, max(n - 1, 1), box.x0 + 4, box.x1 - 4)
+    ys = Scale(lo, hi, box.y0, box.y1)
+
+    def y_of(value: float) -> float:
+        return ys(min(max(value, lo), hi))
+
+    body = [_text(box.x0, 16, title, "tg-legend", "start")]
+    legend_x = box.x1
+    keys: list[tuple[str, str]] = []
+    if limits:
+        last = next(p.limit for p in reversed(points) if p.limit is not None)
+        keys.append(("tg-limit", f"{limit_label} {num(last)}"))
+    keys.extend(("tg-band", f"{name} {num(value)}") for name, value in bands)
+    if clipped:
+        keys.append(("", "▲▼ off scale"))
+    for css, text in reversed(keys):  # right-aligned key: a line sample, then its text
+        legend_x -= 6.2 * len(text)
+        body.append(_text(legend_x, 16, text, "tg-label", "start"))
+        if css:
+            body.append(f'<line class="{css}" x1="{r(legend_x - 24)}" x2="{r(legend_x - 4)}" '
+                        f'y1="12" y2="12"/>')
+        legend_x -= 36
+    for t in nice_ticks(lo, hi, 5):
+        body.append(f'<line class="tg-grid" x1="{r(box.x0)}" x2="{r(box.x1)}" y1="{r(ys(t))}" '
+                    f'y2="{r(ys(t))}"/>')
+        body.append(_text(box.x0 - 6, ys(t) + 4, num(t, 3), anchor="end"))
+    for _name, value in bands:
+        if lo <= value <= hi:
+            body.append(f'<line class="tg-band" x1="{r(box.x0)}" x2="{r(box.x1)}" '
+                        f'y1="{r(ys(value))}" y2="{r(ys(value))}"/>')
+    # the limit as a step line: each verdict's limit holds until the next one's
+    segments: list[str] = []
+    for i, p in enumerate(points):
+        if p.limit is None:
+            continue
+        x_from = xs(i - 0.5) if i > 0 else xs(0)
+        x_to = xs(i + 0.5) if i < n - 1 else xs(n - 1)
+        segments.append(f"M{r(x_from)} {r(y_of(p.limit))}H{r(x_to)}")
+    if segments:
+        body.append(f'<path class="tg-limit" d="{"".join(segments)}"/>')
+    path: list[str] = []
+    pen_down = False
+    for i, p in enumerate(points):
+        if p.value is None:
+            pen_down = False
+            continue
+        path.append(f"{'L' if pen_down else 'M'}{r(xs(i))} {r(y_of(p.value))}")
+        pen_down = True
+    body.append(f'<path class="tg-line" d="{"".join(path)}"/>')
+    for i, p in enumerate(points):
+        if p.value is None:
+            continue
+        cls = "tg-dot" + (" tg-breach" if p.breach else "") + (" tg-held" if p.held else "")
+        tip = f"{p.label}: {num(p.value)}" + (f" (limit {num(p.limit)})" if p.limit is not None
+                                               else "") + (f"; {p.note}" if p.note else "")
+        x, y = xs(i), y_of(p.value)
+        if p.value > hi or p.value < lo:  # off the scale: a triangle on the edge
+            tip += " (off the scale)"
+            tip_y = 6.0 if p.value > hi else -6.0
+            dot = (f'<path class="{cls} tg-off" d="M{r(x)} {r(y - tip_y)}L{r(x - 5)} {r(y)}'
+                   f'L{r(x + 5)} {r(y)}Z"><title>{escape(tip)}</title></path>')
+        else:
+            dot = (f'<circle class="{cls}" cx="{r(x)}" cy="{r(y)}" '
+                   f'r="{3.6 if p.breach or p.held else 2.4}"><title>{escape(tip)}</title>'
+                   "</circle>")
+        if p.href:
+            dot = f'<a href="{escape(p.href)}">{dot}</a>'
+        body.append(dot)
+    body.append(_text(xs(0), height - 6, points[0].label, "tg-label tg-muted", "start"))
+    if n > 1:
+        body.append(_text(xs(n - 1), height - 6, points[-1].label, "tg-label tg-muted", "end"))
+    return _svg(width, height, title, body, "tg-trend")
+
+
+# --- decisions ------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class StripItem:
+    decision: str  # the decision in force
+    overridden: bool = False
+    href: str | None = None
+    title: str = ""
+
+
+def decision_strip(
+    items: Sequence[StripItem], *, cell: float = 11, gap: float = 2, height: float | None = None
+) -> Markup:
+    """One square per verdict, oldest left: brick for hold, green for promote, an amber ring
+    when an operator overrode the gate."""
+    size = height or cell
+    width = max(len(items) * (cell + gap) - gap, cell)
+    body = []
+    for i, item in enumerate(items):
+        cls = "tg-cell " + ("tg-hold" if item.decision == "hold" else "tg-promote")
+        if item.overridden:
+            cls += " tg-overridden"
+        rect = (f'<rect class="{cls}" x="{r(i * (cell + gap))}" y="1" width="{r(cell)}" '
+                f'height="{r(size - 2)}" rx="2"><title>{escape(item.title)}</title></rect>')
+        if item.href:
+            rect = f'<a href="{escape(item.href)}">{rect}</a>'
+        body.append(rect)
+    return _svg(width, size, f"{len(items)} verdicts, oldest first", body, "tg-strip")
+
+
+def limit_gauge(value: float | None, limit: float | None, outcome: str, *, width: float = 110,
+                height: float = 14) -> Markup:
+    """A bar of |value| against a tick at |limit| on a scale to 1.25 times the larger.
+    Empty when either is missing."""
+    if value is None or limit is None or (value == 0 and limit == 0):
+        return Markup("")
+    top = max(abs(value), abs(limit)) * 1.25
+    xs = Scale(0.0, top, 1, width - 1)
+    fill = xs(abs(value)) - 1
+    cls = {"breach": "tg-hold", "advisory": "tg-warn", "inconclusive": "tg-warn"}.get(
+        outcome, "tg-okfill")
+    body = [
+        f'<rect class="tg-track" x="1" y="3" width="{r(width - 2)}" height="{r(height - 6)}" '
+        'rx="2"/>',
+        f'<rect class="{cls}" x="1" y="3" width="{r(fill)}" height="{r(height - 6)}" rx="2" '
+        f'data-value="{abs(value):.6g}"/>',
+        f'<line class="tg-tick" x1="{r(xs(abs(limit)))}" x2="{r(xs(abs(limit)))}" y1="0" '
+        f'y2="{r(height)}"/>',
+    ]
+    return _svg(width, height, f"value {num(value)} against limit {num(limit)}", body,
+                "tg-gauge")
