@@ -22,6 +22,7 @@ from service.gate.policy import Policy, load_policies
 from service.metrics import Metrics
 from service.settings import Settings
 from service.store import db as store_db
+from service.web import auth as web_auth
 from service.web import routes as web_routes
 
 log = logging.getLogger("tidegate")
@@ -70,6 +71,8 @@ def create_app(
         app.include_router(module.router)
     app.include_router(web_routes.router)
     app.include_router(web_routes.root)
+    app.include_router(web_auth.router)
+    web_auth.install(app)
     # Added last = outermost: RequestContext -> BodyLimit -> TokenGate -> routes.
     app.add_middleware(TokenGate, settings=settings, database=app.state.database)
     app.add_middleware(BodyLimit, limit=settings.max_body_bytes)

@@ -67,6 +67,11 @@ def clean_reason(reason: str | None) -> str:
         raise InvalidInput("a reason is required: say why, for the audit log", field="reason")
     if len(text) > 2000:
         raise InvalidInput("the reason is longer than 2000 characters", field="reason")
+    if any((ord(c) < 32 and c not in "\t\n\r") or ord(c) == 127 or 0xD800 <= ord(c) <= 0xDFFF
+           for c in text):
+        # PostgreSQL text cannot hold NUL; other control characters and lone surrogates are
+        # never part of a reason
+        raise InvalidInput("the reason holds a control character", field="reason")
     return text
 
 

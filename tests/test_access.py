@@ -23,6 +23,12 @@ DOCUMENTATION = {"/openapi.json", "/docs", "/docs/oauth2-redirect", "/redoc"}
 #: leaves out what is outside the scope; "global": not about models (needs an unscoped token).
 SCOPE_RULE = {
     ("GET", "/v1/verdicts/{verdict_id}"): "object",
+    ("GET", "/v1/verdicts/{verdict_id}/evidence"): "object",
+    ("POST", "/v1/verdicts/{verdict_id}/override"): "object",
+    ("GET", "/v1/audit"): "filtered",
+    ("GET", "/ui/"): "filtered",
+    ("GET", "/ui/verdicts/{verdict_id}"): "object",
+    ("POST", "/ui/verdicts/{verdict_id}/override"): "object",
     ("GET", "/v1/models"): "filtered",
     ("GET", "/v1/policies"): "filtered",
     ("GET", "/metrics"): "filtered",
@@ -55,30 +61,83 @@ class World:
             assert r.status_code == 201, r.text
         self.verdict_id = first.json()["verdict_id"]
         self.serial = 0
+        for model, key in ((MODEL, "k1"), (OTHER, "o1")):  # an audit entry for each model
+            pinned = api.client.put(f"/v1/models/{model}/reference", headers=api.headers(),
+                                    json={"snapshot": key, "reason": "walk"})
+            assert pinned.status_code == 200, pinned.text
 
     def url(self, path: str) -> str:
         values = {"model": MODEL, "key": "k1", "verdict_id": str(self.verdict_id),
                   "token_id": str(tokens_made(self.api))}
         return re.sub(r"\{(\w+)\}", lambda m: values[m.group(1)], path)
 
-    def body(self, method: str, path: str) -> dict[str, Any] | None:
+    def _admin_get(self, path: str) -> Any:
+        return self.api.client.get(path, headers=self.api.headers()).json()
+
+    def other_baseline(self) -> str:
+        """A snapshot that is not the baseline now (setting the baseline it has is a 409)."""
+        return "k1" if self._admin_get(f"/v1/models/{MODEL}")["baseline"] != "k1" else "k2"
+
+    def other_decision(self) -> str:
+        """The decision not in force for the verdict (overriding to the same one is a 409)."""
+        now = self._admin_get(f"/v1/verdicts/{self.verdict_id}")["effective_decision"]
+        return "hold" if now == "promote" else "promote"
+
+    def form_token(self) -> str:
+        page = self.api.client.get(f"/ui/models/{MODEL}", headers=self.api.headers()).text
+        match = re.search(r'name="csrf_token" value="([^"]+)"', page)
+        assert match
+        return match.group(1)
+
+    def body(self, method: str, path: str) -> tuple[str, dict[str, Any]] | None:
+        """("json" | "form", a valid body) for routes that take one."""
         self.serial += 1
-        bodies: dict[tuple[str, str], dict[str, Any]] = {
-            ("POST", "/v1/models/{model}/snapshots"):
-                snapshot_body(f"walk-{self.serial}", step=10 + self.serial),
-            ("PUT", "/v1/models/{model}/baseline"): {"snapshot": "k1", "reason": "walk"},
-            ("POST", "/v1/tokens"): {"role": "viewer", "models": ["x"]},
-            ("POST", "/v1/models/{model}/replay"): {"limit": 5},
-            ("PUT", "/v1/models/{model}/reference"): {"snapshot": "k1", "reason": "walk"},
-        }
-        return bodies.get((method, path))
+        if (method, path) == ("POST", "/v1/models/{model}/snapshots"):
+            return "json", snapshot_body(f"walk-{self.serial}", step=10 + self.serial)
+        if (method, path) == ("PUT", "/v1/models/{model}/baseline"):
+            return "json", {"snapshot": self.other_baseline(), "reason": "walk"}
+        if (method, path) == ("POST", "/v1/tokens"):
+            return "json", {"role": "viewer", "models": ["x"]}
+        if (method, path) == ("POST", "/v1/models/{model}/replay"):
+            return "json", {"limit": 5}
+        if (method, path) == ("PUT", "/v1/models/{model}/reference"):
+            return "json", {"snapshot": "k1", "reason": "walk"}
+        if (method, path) == ("POST", "/v1/verdicts/{verdict_id}/override"):
+            return "json", {"decision": self.other_decision(), "reason": "walk"}
+        if (method, path) == ("POST", "/ui/verdicts/{verdict_id}/override"):
+            return "form", {"decision": self.other_decision(), "reason": "walk",
+                            "csrf_token": self.form_token()}
+        if (method, path) == ("POST", "/ui/models/{model}/baseline"):
+            return "form", {"snapshot": self.other_baseline(), "reason": "walk",
+                            "csrf_token": self.form_token()}
+        if (method, path) == ("POST", "/ui/sign-in"):
+            return "form", {"token": "tg_x", "csrf_token": "x"}
+        if (method, path) == ("POST", "/ui/sign-out"):
+            return "form", {"csrf_token": "x"}
+        return None
 
     def call(self, method: str, route: RouteInfo, token: str | None) -> Any:
         body = self.body(method, route.path)
         if route.dependant is not None and route.dependant.body_params and body is None:
             pytest.fail(f"{method} {route.path} takes a body: give a valid one in World.body")
         headers = {"Authorization": f"Bearer {token}"} if token is not None else {}
-        return self.api.client.request(method, self.url(route.path), json=body, headers=headers)
+        kind, payload = body if body is not None else ("json", None)
+        kwargs: dict[str, Any] = {"json": payload} if kind == "json" else {"data": payload}
+        return self.api.client.request(method, self.url(route.path), headers=headers,
+                                       follow_redirects=False, **kwargs)
+
+
+def refused_without_sign_in(method: str, route: RouteInfo, response: Any) -> bool:
+    """Pages: GET redirects to the sign-in page, a form answers 401; the API answers 401 with
+    the JSON error and a WWW-Authenticate challenge."""
+    if route.path.startswith("/ui/"):
+        if method == "GET":
+            return response.status_code == 303 and response.headers["location"].startswith(
+                "/ui/sign-in?next=")
+        return response.status_code == 401
+    return (response.status_code == 401
+            and response.json()["error"]["code"] == "unauthorized"
+            and response.headers["www-authenticate"].startswith("Bearer"))
 
 
 def tokens_made(api: Api) -> int:
@@ -126,13 +185,12 @@ def test_every_route_refuses_callers_without_a_valid_token(api: Api) -> None:
         for label, token in bad_tokens.items():
             response = world.call(method, route, token)
             if route.access == ("public",):
-                assert response.status_code < 400, (label, method, route.path)
+                assert response.status_code < 500, (label, method, route.path)
                 continue
-            assert response.status_code == 401, (label, method, route.path, response.text)
-            assert response.json()["error"]["code"] == "unauthorized"
-            assert response.headers["www-authenticate"].startswith("Bearer")
+            assert refused_without_sign_in(method, route, response), (
+                label, method, route.path, response.status_code, response.text[:200])
             checked += 1
-    assert checked >= 4 * 12  # 12 protected operations today; more as routes are added
+    assert checked >= 4 * 22  # 22 protected operations today; more as routes are added
 
 
 def test_every_route_checks_the_role(api: Api) -> None:
@@ -150,7 +208,8 @@ def test_every_route_checks_the_role(api: Api) -> None:
                 allowed += 1
             else:
                 assert response.status_code == 403, (role, method, route.path, response.text)
-                assert response.json()["error"]["code"] == "forbidden"
+                if not route.path.startswith("/ui/"):
+                    assert response.json()["error"]["code"] == "forbidden"
                 refused += 1
     # every action is refused to some role, except reading, which every role may do
     assert refused >= 10 and allowed >= 15
@@ -205,12 +264,16 @@ def test_scope_patterns_and_posts_for_other_models(api: Api) -> None:
 
 def test_open_mode_lets_everyone_in_and_names_the_actor(make_api: Any) -> None:
     api = make_api(auth="open")
-    response = api.client.post("/v1/models/m/snapshots", json=snapshot_body("a", step=1),
-                               headers={"X-Actor": "dana"})
-    assert response.status_code == 201
+    for step, key in enumerate(("a", "b"), start=1):
+        response = api.client.post("/v1/models/m/snapshots", json=snapshot_body(key, step=step),
+                                   headers={"X-Actor": "dana"})
+        assert response.status_code == 201
     put = api.client.put("/v1/models/m/baseline", json={"snapshot": "a", "reason": "r"},
                          headers={"X-Actor": "dana"})
     assert put.status_code == 200
+    audit = api.client.get("/v1/audit", params={"model": "m"}).json()["data"]
+    assert audit[0]["actor"] == "dana"
+    assert api.client.get("/ui/").status_code == 200  # pages too, without signing in
 
 
 def test_the_token_is_not_stored_in_clear(api: Api, tmp_path: Path) -> None:

@@ -125,8 +125,9 @@ class Allowed:
             raise ValueError(f"unknown action {action!r}")
         self.action = action
 
-    def __call__(self, request: Request) -> Principal:
-        principal = get_principal(request)
+    def __call__(
+        self, request: Request, principal: Annotated[Principal, Depends(get_principal)]
+    ) -> Principal:
         model = request.path_params.get("model")
         principal.require(self.action, model if isinstance(model, str) else None)
         return principal

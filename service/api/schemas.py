@@ -249,7 +249,8 @@ class OverrideCreate(BaseModel):
 
     decision: Literal["promote", "hold"] = Field(description="The decision to put in force.")
     reason: Annotated[str, StringConstraints(strip_whitespace=True, min_length=1,
-                                             max_length=2000)] = Field(
+                                             max_length=2000,
+                                             pattern=r"^[^\x00-\x08\x0b\x0c\x0e-\x1f\x7f]*$")] = Field(
         description="Why (required; kept with the override and in the audit log)."
     )
 

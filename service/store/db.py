@@ -88,14 +88,15 @@ def transaction(factory: sessionmaker[Session]) -> Iterator[Session]:
 
 @contextmanager
 def read_transaction(factory: sessionmaker[Session]) -> Iterator[Session]:
-    """A session for reading only: SQLite opens it with a deferred ``BEGIN``; it is rolled back
-    at the end, so nothing it did is ever committed."""
+    """A session for reading only: SQLite opens it with a deferred ``BEGIN``; it is closed at
+    the end without a commit (the database transaction is rolled back), so nothing it did is
+    ever stored. Rows read keep their loaded values after the block (closing detaches them;
+    it does not expire them)."""
     session = factory()
     try:
         session.connection(execution_options={READ_ONLY: True})
         yield session
     finally:
-        session.rollback()
         session.close()
 
 

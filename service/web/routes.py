@@ -21,7 +21,8 @@ from datetime import datetime
 from pathlib import Path
 from typing import Annotated, Any
 
-from fastapi import APIRouter, Form, Query, Request
+from fastapi import APIRouter, Depends, Form, Query, Request
+from fastapi import Path as PathParam
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from fastapi.templating import Jinja2Templates
 from sqlalchemy.orm import Session
@@ -34,7 +35,10 @@ from service.gate.policy import select_policy
 from service.store import repo
 from service.store.tables import ModelRow, SnapshotRow, VerdictRow
 from service.web import csrf, format, svg, trends
-from service.web.deps import WebPrincipalDep
+from service.web.auth import SESSION_COOKIE
+from service.api.deps import PUBLIC
+from service.api.schemas import MAX_ID
+from service.web.deps import WebOperatorDep, WebReaderDep
 
 TEMPLATES = Jinja2Templates(directory=str(Path(__file__).parent / "templates"))
 for _name in ("utc_text", "num", "signed", "pct", "pvalue", "milliseconds", "duration_text",
@@ -48,7 +52,7 @@ WINDOW = 96
 TABLE_PAGE = 25
 
 router = APIRouter(prefix="/ui", include_in_schema=False)
-root = APIRouter(include_in_schema=False)
+root = APIRouter(include_in_schema=False, dependencies=[Depends(PUBLIC)])
 
 
 @root.get("/")
@@ -60,13 +64,15 @@ def render(request: Request, template: str, context: Mapping[str, Any], principa
            now: datetime, status: int = 200) -> HTMLResponse:
     full = {
         "principal": principal,
+        "signed_in": bool(request.cookies.get(SESSION_COOKIE)),
         "now": now,
         "ago": lambda value: format.age_text(value, now),
         "csrf_token": csrf.token_for(request),
         "base_url": str(request.base_url).rstrip("/"),
         **context,
     }
-    return TEMPLATES.TemplateResponse(request, template, full, status_code=status)
+    response = TEMPLATES.TemplateResponse(request, template, full, status_code=status)
+    return csrf.attach(request, response)  # type: ignore[return-value]
 
 
 def error_page(request: Request, exc: TidegateError, principal: Principal, now: datetime
@@ -122,9 +128,9 @@ def is_stuck(view: Mapping[str, Any]) -> bool:
 
 @router.get("/", response_class=HTMLResponse)
 def models_page(request: Request, db: DbDep, clock: ClockDep, policies: PoliciesDep,
-                principal: WebPrincipalDep) -> Response:
+                principal: WebReaderDep) -> Response:
     now = clock()
-    with db.transaction() as session:
+    with db.read() as session:
         shown = []
         for row in repo.list_model_rows(session):
             if not principal.allows("read", row.name):
@@ -202,14 +208,14 @@ def model_context(session: Session, *, row: ModelRow, now: datetime, policies: A
 @router.get("/models/{model}", response_class=HTMLResponse)
 def model_page(
     request: Request, model: str, db: DbDep, clock: ClockDep, policies: PoliciesDep,
-    principal: WebPrincipalDep,
+    principal: WebReaderDep,
     before: Annotated[str | None, Query(max_length=100)] = None,
     done: Annotated[str | None, Query(max_length=20)] = None,
 ) -> Response:
     now = clock()
     try:
         _require(principal, "read", model)
-        with db.transaction() as session:
+        with db.read() as session:
             context = model_context(session, row=_model(session, model), now=now,
                                     policies=policies, before=before)
     except TidegateError as exc:
@@ -271,12 +277,12 @@ def _verdict_by_key(session: Session, model: str, key: str) -> tuple[VerdictRow,
 @router.get("/models/{model}/snapshots/{key}", response_class=HTMLResponse)
 def verdict_page(
     request: Request, model: str, key: str, db: DbDep, clock: ClockDep,
-    principal: WebPrincipalDep, done: Annotated[str | None, Query(max_length=20)] = None,
+    principal: WebReaderDep, done: Annotated[str | None, Query(max_length=20)] = None,
 ) -> Response:
     now = clock()
     try:
         _require(principal, "read", model)
-        with db.transaction() as session:
+        with db.read() as session:
             verdict, row = _verdict_by_key(session, model, key)
             context = verdict_context(session, verdict=verdict, model=row)
     except TidegateError as exc:
@@ -286,10 +292,11 @@ def verdict_page(
 
 
 @router.get("/verdicts/{verdict_id}")
-def verdict_link(request: Request, verdict_id: int, db: DbDep, clock: ClockDep,
-                 principal: WebPrincipalDep) -> Response:
+def verdict_link(request: Request, verdict_id: Annotated[int, PathParam(ge=1, le=MAX_ID)],
+                 db: DbDep, clock: ClockDep,
+                 principal: WebReaderDep) -> Response:
     try:
-        with db.transaction() as session:
+        with db.read() as session:
             verdict, model = operate.verdict_with_model(session, verdict_id=verdict_id)
             _require(principal, "read", model.name)
             snap = repo.snapshot_by_id(session, snapshot_id=verdict.snapshot_id)
@@ -306,10 +313,10 @@ def verdict_link(request: Request, verdict_id: int, db: DbDep, clock: ClockDep,
 @router.post("/verdicts/{verdict_id}/override", response_class=HTMLResponse)
 def override_form(
     request: Request,
-    verdict_id: int,
+    verdict_id: Annotated[int, PathParam(ge=1, le=MAX_ID)],
     db: DbDep,
     clock: ClockDep,
-    principal: WebPrincipalDep,
+    principal: WebOperatorDep,
     decision: Annotated[str, Form(max_length=20)] = "",
     reason: Annotated[str, Form(max_length=4000)] = "",
     csrf_token: Annotated[str, Form(max_length=200)] = "",
@@ -337,7 +344,7 @@ def _form_again(request: Request, exc: TidegateError, principal: Principal, now:
     """The verdict page again, with the problem beside the form and what was typed kept.
     Nothing was stored (the transaction rolled back)."""
     try:
-        with request.app.state.database.transaction() as session:
+        with request.app.state.database.read() as session:
             verdict, model = operate.verdict_with_model(session, verdict_id=verdict_id)
             context = verdict_context(session, verdict=verdict, model=model)
     except TidegateError as inner:
@@ -355,7 +362,7 @@ def rollback_form(
     db: DbDep,
     clock: ClockDep,
     policies: PoliciesDep,
-    principal: WebPrincipalDep,
+    principal: WebOperatorDep,
     snapshot: Annotated[str, Form(max_length=200)] = "",
     reason: Annotated[str, Form(max_length=4000)] = "",
     csrf_token: Annotated[str, Form(max_length=200)] = "",
@@ -372,7 +379,7 @@ def rollback_form(
                              actor=principal.name, now=now)
     except (InvalidInput, Conflict, NotFound) as exc:
         try:
-            with db.transaction() as session:
+            with db.read() as session:
                 context = model_context(session, row=_model(session, model), now=now,
                                         policies=policies, before=None)
         except TidegateError as inner:

@@ -11,6 +11,7 @@ import httpx
 import pytest
 
 from service.api.deps import Principal, get_principal
+from service.web.deps import get_web_principal
 from tests.oncall_support import Harness, harness, snapshot_body
 
 
@@ -223,6 +224,7 @@ def test_rollback_from_verdict_page_returns_there(h: Harness) -> None:
 def test_viewer_sees_pages_without_forms_and_cannot_post(h: Harness) -> None:
     token = csrf_of(h.http.get("/ui/models/shelf-ranker/snapshots/s04").text)
     h.app.dependency_overrides[get_principal] = lambda: Principal("vera", role="viewer")
+    h.app.dependency_overrides[get_web_principal] = lambda: Principal("vera", role="viewer")
     try:
         page = h.http.get("/ui/models/shelf-ranker/snapshots/s04")
         assert page.status_code == 200
@@ -240,8 +242,9 @@ def test_viewer_sees_pages_without_forms_and_cannot_post(h: Harness) -> None:
 
 
 def test_model_outside_scope_is_hidden_and_forbidden(h: Harness) -> None:
-    h.app.dependency_overrides[get_principal] = lambda: Principal(
-        "otto", role="operator", models=("also-*",))
+    otto = Principal("otto", role="operator", models=("also-*",))
+    h.app.dependency_overrides[get_principal] = lambda: otto
+    h.app.dependency_overrides[get_web_principal] = lambda: otto
     try:
         assert ">shelf-ranker<" not in h.http.get("/ui/").text
         assert h.http.get("/ui/models/shelf-ranker").status_code == 403

@@ -7,7 +7,7 @@ from typing import Annotated, Any
 from fastapi import APIRouter, Query
 
 from service import views
-from service.api.deps import DbDep, PrincipalDep
+from service.api.deps import DbDep, ReaderDep
 from service.api.routers.snapshots import ERRORS
 from service.api.schemas import AuditList
 from service.errors import Forbidden, InvalidInput
@@ -23,7 +23,7 @@ RESPONSES: dict[int | str, dict[str, Any]] = {403: dict(ERRORS[404]), 422: dict(
             summary="Audit entries newest first: who, what, when, before and after")
 def list_audit(
     db: DbDep,
-    principal: PrincipalDep,
+    principal: ReaderDep,
     model: Annotated[str | None, Query(max_length=100, description="Only this model.")] = None,
     limit: Annotated[int, Query(ge=1, le=500)] = 50,
     cursor: Annotated[str | None, Query(max_length=100)] = None,
@@ -37,13 +37,15 @@ def list_audit(
             before_id = repo.decode_cursor(cursor)
         except ValueError as exc:
             raise InvalidInput(str(exc), field="query.cursor") from None
-    with db.transaction() as session:
+    with db.read() as session:
         rows = list(repo.list_audit(session, model=model, limit=limit + 1, before_id=before_id))
     more = len(rows) > limit
     rows = rows[:limit]
-    # entries of models outside the caller's scope are left out of the page
+    # entries of models outside the caller's scope are left out of the page; entries about no
+    # model (tokens made and revoked) only for callers whose scope is every model
     data = [views.audit_view(r) for r in rows
-            if r.model is None or principal.allows("read", r.model)]
+            if (principal.allows("read", r.model) if r.model is not None
+                else "*" in principal.models)]
     return {
         "data": data,
         "count": len(data),

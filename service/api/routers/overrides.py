@@ -4,12 +4,12 @@ from __future__ import annotations
 
 from typing import Annotated, Any
 
-from fastapi import APIRouter, Query
+from fastapi import APIRouter, Path, Query
 
 from service import operate, views
-from service.api.deps import ClockDep, DbDep, PrincipalDep
+from service.api.deps import ClockDep, DbDep, OperatorDep, ReaderDep
 from service.api.routers.snapshots import ERRORS
-from service.api.schemas import EvidencePublic, OverrideCreate, OverrideResult
+from service.api.schemas import MAX_ID, EvidencePublic, OverrideCreate, OverrideResult
 from service.errors import Forbidden
 
 router = APIRouter(prefix="/v1/verdicts", tags=["verdicts"])
@@ -25,7 +25,8 @@ RESPONSES[403] = dict(ERRORS[404])
     summary="Override a verdict's decision (audited; the verdict itself is kept as it was)",
 )
 def override(
-    verdict_id: int, body: OverrideCreate, db: DbDep, clock: ClockDep, principal: PrincipalDep
+    verdict_id: Annotated[int, Path(ge=1, le=MAX_ID)], body: OverrideCreate, db: DbDep,
+    clock: ClockDep, principal: OperatorDep,
 ) -> dict[str, object]:
     with db.transaction() as session:
         _, model = operate.verdict_with_model(session, verdict_id=verdict_id)
@@ -53,12 +54,12 @@ def override(
     summary="Score distributions on common bins, per-segment table, what changed, what serves",
 )
 def evidence(
-    verdict_id: int,
+    verdict_id: Annotated[int, Path(ge=1, le=MAX_ID)],
     db: DbDep,
-    principal: PrincipalDep,
+    principal: ReaderDep,
     bins: Annotated[int, Query(ge=2, le=200, description="Bins of the distributions.")] = 30,
 ) -> dict[str, object]:
-    with db.transaction() as session:
+    with db.read() as session:
         verdict, model = operate.verdict_with_model(session, verdict_id=verdict_id)
         if not principal.allows("read", model.name):
             raise Forbidden(f"{principal.name} may not read {model.name!r}")
