@@ -130,6 +130,7 @@ def test_every_write_transaction_starts_with_begin_immediate(api: Api) -> None:
     event.listen(engine, "before_cursor_execute", capture)
     try:
         assert api.post("m", snapshot_body("a", step=1)).status_code == 201
+        assert api.post("m", snapshot_body("b", step=2)).status_code == 201
         put = api.client.put("/v1/models/m/baseline", json={"snapshot": "a", "reason": "r"},
                              headers=api.headers())
         assert put.status_code == 200
