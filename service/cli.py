@@ -155,7 +155,7 @@ def cmd_token(args: argparse.Namespace) -> int:
             rows = tokens.list_tokens(session, include_revoked=args.all)
             from service.api.routers.tokens import token_view
 
-            views = [token_view(row) for row in rows]
+            views: list[dict[str, Any]] = [token_view(row) for row in rows]
         if args.json:
             _print_json(views)
             return EXIT_OK

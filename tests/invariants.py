@@ -61,13 +61,17 @@ def check_store(url: str, *, columns_per_sample: int | None = None) -> StoreStat
 
             assert empty_columns is None
             by_snapshot = Counter(v.snapshot_id for v in verdicts)
-            assert set(by_snapshot) == set(snapshots), "a snapshot without a verdict, or the reverse"
+            assert set(by_snapshot) == set(snapshots), (
+                "a snapshot without a verdict, or the reverse"
+            )
             assert max(by_snapshot.values(), default=1) == 1, "a snapshot with two verdicts"
             for sid, snap in snapshots.items():
                 if snap.sample_rows and snap.sample_pruned_at is None:
                     assert column_counts[sid] > 0, f"snapshot {snap.key} lost its sample"
                     if columns_per_sample is not None:
-                        assert column_counts[sid] == columns_per_sample, f"{snap.key}: half a sample"
+                        assert column_counts[sid] == columns_per_sample, (
+                            f"{snap.key}: half a sample"
+                        )
                 elif not snap.sample_rows:
                     assert column_counts[sid] == 0
 
@@ -76,14 +80,18 @@ def check_store(url: str, *, columns_per_sample: int | None = None) -> StoreStat
                 previous = None
                 for promotion in chain:
                     assert promotion.previous_id == previous, (
-                        f"model {model.name}: promotion {promotion.id} replaced {promotion.previous_id}, "
-                        f"but the baseline then was {previous}"
+                        f"model {model.name}: promotion {promotion.id} replaced "
+                        f"{promotion.previous_id}, but the baseline then was {previous}"
                     )
                     previous = promotion.snapshot_id
-                assert model.baseline_id == previous, f"model {model.name}: baseline is not the last"
+                assert model.baseline_id == previous, (
+                    f"model {model.name}: baseline is not the last"
+                )
                 moved = {v.id for v in verdicts if v.model_id == model_id and v.moved_baseline}
                 by_verdict = {p.verdict_id for p in chain if p.cause == "verdict"}
-                assert moved == by_verdict, f"model {model.name}: moved_baseline without a promotion"
+                assert moved == by_verdict, (
+                    f"model {model.name}: moved_baseline without a promotion"
+                )
                 # replay: each verdict saw the baseline of the last promotion stored before it
                 events = sorted(
                     [(v.id, 1, v) for v in verdicts if v.model_id == model_id]
@@ -96,8 +104,8 @@ def check_store(url: str, *, columns_per_sample: int | None = None) -> StoreStat
                     for _, kind, row in events:
                         if kind == 1:
                             assert row.baseline_id == current, (
-                                f"model {model.name}: verdict {row.id} judged against {row.baseline_id}, "
-                                f"the baseline was {current}"
+                                f"model {model.name}: verdict {row.id} judged against "
+                                f"{row.baseline_id}, the baseline was {current}"
                             )
                         else:
                             current = row.snapshot_id
@@ -109,7 +117,10 @@ def check_store(url: str, *, columns_per_sample: int | None = None) -> StoreStat
             names = {m.id: m.name for m in models.values()}
             keys = frozenset((names[s.model_id], s.key) for s in snapshots.values())
             verdict_of = {
-                (names[snapshots[v.snapshot_id].model_id], snapshots[v.snapshot_id].key): (v.id, v.decision)
+                (names[snapshots[v.snapshot_id].model_id], snapshots[v.snapshot_id].key): (
+                    v.id,
+                    v.decision,
+                )
                 for v in verdicts
             }
             return StoreState(

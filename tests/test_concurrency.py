@@ -201,7 +201,7 @@ def test_concurrent_posts_keep_one_chain_of_baselines(api: Api) -> None:
     results = concurrent_posts(api.post)
     assert all(status in (200, 201) for _, status, _ in results), results
     first: dict[str, int] = {}
-    for key, status, body in results:
+    for key, _status, body in results:
         # a retry answers the stored verdict: same id, nothing duplicated
         if key in first:
             assert body["verdict_id"] == first[key]

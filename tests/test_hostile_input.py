@@ -327,7 +327,8 @@ def test_the_body_limit_answers_before_reading_the_body() -> None:
         sent.append(message)
 
     limit = BodyLimit(app, limit=1024)
-    scope = {"type": "http", "method": "POST", "path": "/", "headers": [(b"content-length", b"60000")]}
+    scope = {"type": "http", "method": "POST", "path": "/",
+             "headers": [(b"content-length", b"60000")]}
     asyncio.run(limit(scope, receive, capture))
     assert reads == 0 and sent[0]["status"] == 413
 

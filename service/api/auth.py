@@ -28,6 +28,7 @@ from service.errors import Unauthorized
 from service.settings import Settings
 from service.store import tokens
 from service.store.db import read_transaction, transaction
+from service.store.tables import TokenRow
 
 log = logging.getLogger("tidegate.auth")
 
@@ -77,7 +78,7 @@ def lookup(database: Database, secret: str, *, now: datetime) -> Principal | Non
     if stale:
         try:
             with transaction(database.factory) as session:
-                fresh = session.get(tokens.TokenRow, principal.token_id)
+                fresh = session.get(TokenRow, principal.token_id)
                 if fresh is not None:
                     fresh.last_used_at = now
         except Exception:  # noting the time of use must never refuse a request

@@ -12,7 +12,7 @@ from typing import Annotated, Any
 from fastapi import Depends, Request
 from sqlalchemy.orm import Session, sessionmaker
 
-from service.errors import Forbidden, Unauthorized
+from service.errors import Forbidden
 from service.gate.policy import Policy
 from service.settings import Settings
 from service.store.db import read_transaction, transaction

@@ -92,7 +92,9 @@ def summarise(score: np.ndarray) -> SampleSummary:
     )
 
 
-def _histogram(finite: np.ndarray, lo: float, hi: float) -> tuple[tuple[float, ...], tuple[int, ...]]:
+def _histogram(
+    finite: np.ndarray, lo: float, hi: float
+) -> tuple[tuple[float, ...], tuple[int, ...]]:
     """40 equal bins from the lowest to the highest finite score; none when the range cannot be
     cut into finite bins (scores near the float limits)."""
     top = hi if hi > lo else lo + max(abs(lo) * 1e-9, 1e-9)

@@ -35,7 +35,10 @@ def make_engine(settings: Settings) -> Engine:
     if url.startswith("sqlite"):
         engine = create_engine(
             url,
-            connect_args={"check_same_thread": False, "timeout": settings.sqlite_busy_timeout_ms / 1000},
+            connect_args={
+                "check_same_thread": False,
+                "timeout": settings.sqlite_busy_timeout_ms / 1000,
+            },
         )
         busy = settings.sqlite_busy_timeout_ms
         synchronous = settings.sqlite_synchronous

@@ -71,7 +71,7 @@ class WebAllowed(Allowed):
     """Page dependency declaring the action a page or form needs (see ``Allowed``); refusals
     become HTML pages."""
 
-    def __call__(  # type: ignore[override]
+    def __call__(
         self, request: Request, principal: Annotated[Principal, Depends(get_web_principal)]
     ) -> Principal:
         model = request.path_params.get("model")

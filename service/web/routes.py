@@ -28,7 +28,8 @@ from fastapi.templating import Jinja2Templates
 from sqlalchemy.orm import Session
 
 from service import explain, operate, views
-from service.api.deps import ClockDep, DbDep, PoliciesDep, Principal
+from service.api.deps import PUBLIC, ClockDep, DbDep, PoliciesDep, Principal
+from service.api.schemas import MAX_ID
 from service.errors import Conflict, Forbidden, InvalidInput, NotFound, TidegateError
 from service.evidence import DEFAULT_BINS
 from service.gate.policy import select_policy
@@ -36,8 +37,6 @@ from service.store import repo
 from service.store.tables import ModelRow, SnapshotRow, VerdictRow
 from service.web import csrf, format, svg, trends
 from service.web.auth import SESSION_COOKIE
-from service.api.deps import PUBLIC
-from service.api.schemas import MAX_ID
 from service.web.deps import WebOperatorDep, WebReaderDep
 
 TEMPLATES = Jinja2Templates(directory=str(Path(__file__).parent / "templates"))

@@ -27,7 +27,8 @@ def visible_policies(policies: list[Policy], principal: Principal, db: DbDep) ->
     ]
 
 
-@router.get("", response_model=PolicyList, responses=ERRORS, summary="The policies in force, with their digests")
+@router.get("", response_model=PolicyList, responses=ERRORS,
+            summary="The policies in force, with their digests")
 def list_policies(policies: PoliciesDep, principal: ReaderDep, db: DbDep) -> dict[str, object]:
     data = [
         {

@@ -5,6 +5,7 @@ from __future__ import annotations
 import hashlib
 import json
 import re
+from typing import Any
 
 from fastapi import APIRouter, Path, Request, Response
 
@@ -19,7 +20,7 @@ router = APIRouter(prefix="/v1/models/{model}/snapshots", tags=["snapshots"])
 
 MODEL_NAME = r"^[A-Za-z0-9][A-Za-z0-9._-]{0,99}$"
 ModelPath = Path(description="Model name: letters, digits, . _ - (at most 100).", max_length=100)
-ERRORS = {
+ERRORS: dict[int | str, dict[str, Any]] = {
     401: {"model": ErrorResponse, "description": "No valid API token"},
     403: {"model": ErrorResponse, "description": "The token's role or model scope does not "
           "allow this"},
