@@ -165,7 +165,7 @@ def gini(values: object) -> float:
     return float(np.dot(weights, x) / (n * total))
 
 
-def summarize_lists(lists: Lists, *, catalog_size: int | None = None) -> ListSummary:
+def summarise_lists(lists: Lists, *, catalog_size: int | None = None) -> ListSummary:
     """Coverage and exposure Gini of one snapshot's *lists*.
 
     Parameters

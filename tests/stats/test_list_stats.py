@@ -88,18 +88,18 @@ def test_ranked_lists_keeps_an_item_once_per_group() -> None:
     assert built == {"g": ("a", "b")}
 
 
-def test_summarize_lists_coverage_and_gini_over_the_catalog() -> None:
+def test_summarise_lists_coverage_and_gini_over_the_catalog() -> None:
     # Two lists of 2 over a catalog of 8: items a (twice), b, c shown -> coverage 3/8; the
     # Gini of the exposure (2, 1, 1, 0, 0, 0, 0, 0) by Gini's mean-difference definition.
     lists_ = {"g1": ("a", "b"), "g2": ("a", "c")}
-    summary = lists.summarize_lists(lists_, catalog_size=8)
+    summary = lists.summarise_lists(lists_, catalog_size=8)
     assert summary.coverage == pytest.approx(3 / 8)
     exposure = np.array([2, 1, 1, 0, 0, 0, 0, 0], dtype=float)
     pairs = np.abs(exposure[:, None] - exposure[None, :]).sum()
     mean_difference = pairs / (2 * exposure.size**2 * exposure.mean())
     assert summary.gini == pytest.approx(mean_difference, rel=1e-12)
     with pytest.raises(ValueError, match="smaller than the 3 distinct"):
-        lists.summarize_lists(lists_, catalog_size=2)
+        lists.summarise_lists(lists_, catalog_size=2)
 
 
 def test_mean_popularity_and_list_share_popularity() -> None:

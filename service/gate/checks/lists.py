@@ -238,8 +238,8 @@ def run_lists(config: ListsConfig, ctx: CheckContext) -> list[Finding]:
         details["popularity_source"] = source
     else:
         size, source = _catalog_size(config, ctx, observed)
-        cand_summary = list_stats.summarize_lists(cand_lists, catalog_size=size)
-        other_summary = list_stats.summarize_lists(other_lists, catalog_size=size)
+        cand_summary = list_stats.summarise_lists(cand_lists, catalog_size=size)
+        other_summary = list_stats.summarise_lists(other_lists, catalog_size=size)
         cand_value = getattr(cand_summary, statistic)
         other_value = getattr(other_summary, statistic)
         details.update(
