@@ -46,11 +46,16 @@ def create_app(
     if check_database:
         store_db.ensure_ready(settings, engine)
         storage = store_db.storage_settings(engine)
-        log.info("storage settings: %s", storage,
-                 extra=logs.fields(event="storage", dialect=engine.dialect.name, **storage))
+        log.info(
+            "storage settings: %s",
+            storage,
+            extra=logs.fields(event="storage", dialect=engine.dialect.name, **storage),
+        )
     if settings.auth == "open":
-        log.warning("OPEN mode: no API tokens are checked (demo and local development only)",
-                    extra=logs.fields(event="auth", auth="open"))
+        log.warning(
+            "OPEN mode: no API tokens are checked (demo and local development only)",
+            extra=logs.fields(event="auth", auth="open"),
+        )
     loaded = list(policies) if policies is not None else load_policies(settings.policy_dir)
     app = FastAPI(
         title="tidegate",

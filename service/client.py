@@ -1,8 +1,9 @@
 """A small Python client for the retraining job and the CLI.
 
->>> client = TidegateClient("http://127.0.0.1:8080", token="...")      # doctest: +SKIP
->>> verdict = client.post_snapshot("shelf-ranker", {"key": "2026-12-01T02:45Z", ...})  # doctest: +SKIP
->>> verdict["decision"]                                                 # doctest: +SKIP
+>>> client = TidegateClient("http://127.0.0.1:8080", token="...")  # doctest: +SKIP
+>>> body = {"key": "2026-12-01T02:45Z", "sample": {"score": [...]}}   # doctest: +SKIP
+>>> verdict = client.post_snapshot("shelf-ranker", body)              # doctest: +SKIP
+>>> verdict["decision"]                                               # doctest: +SKIP
 'promote'
 """
 
@@ -117,7 +118,8 @@ class TidegateClient:
     def override(self, verdict_id: int, decision: str, reason: str) -> dict[str, Any]:
         """Put *decision* in force for a verdict, with a reason (audited)."""
         return self.request(  # type: ignore[no-any-return]
-            "POST", f"/v1/verdicts/{verdict_id}/override",
+            "POST",
+            f"/v1/verdicts/{verdict_id}/override",
             json={"decision": decision, "reason": reason},
         )
 

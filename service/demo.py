@@ -203,7 +203,13 @@ def shelf_ranker(end: datetime, *, hours: int = 36, rows: int = 3000) -> Iterato
         # recomputation up to rounding noise (no offline/online skew in the demo).
         served = np.clip(baseline_scores + rng.normal(0.0, 2e-4, rows), 0.0, 1.0)
         body = _body(
-            key, parent, watermark, rows_trained, holdout, scores, baseline_scores,
+            key,
+            parent,
+            watermark,
+            rows_trained,
+            holdout,
+            scores,
+            baseline_scores,
             extra_columns={"served_score": [round(float(v), 6) for v in served]},
         )
         yield DemoEvent("shelf-ranker", at, body, kind)
@@ -240,8 +246,14 @@ def also_read(end: datetime, *, hours: int = 36) -> Iterator[DemoEvent]:
             head_bias = 0.95  # nearly every reader is shown the same bestsellers
             note = "popularity-collapse"
         body = _body(
-            key, parent, at - timedelta(minutes=2), int(rng.normal(420_000, 15_000)), holdout,
-            scores, None, {"recall_at_10": round(step_recall, 5), "catalog_size": CATALOG},
+            key,
+            parent,
+            at - timedelta(minutes=2),
+            int(rng.normal(420_000, 15_000)),
+            holdout,
+            scores,
+            None,
+            {"recall_at_10": round(step_recall, 5), "catalog_size": CATALOG},
             extra_columns=shelves.lists(rng, head_bias=head_bias),
         )
         yield DemoEvent("also-read", at, body, note)

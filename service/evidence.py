@@ -102,9 +102,7 @@ def counts_from_values(values: np.ndarray, edges: np.ndarray) -> np.ndarray:
     return out
 
 
-def counts_from_quantiles(
-    quantiles: Sequence[float], finite: int, edges: np.ndarray
-) -> np.ndarray:
+def counts_from_quantiles(quantiles: Sequence[float], finite: int, edges: np.ndarray) -> np.ndarray:
     """Expected counts per bin from a quantile summary (levels 0, 1/(k-1), ..., 1).
 
     The distribution function at each edge is read off the quantiles by linear interpolation
@@ -155,13 +153,25 @@ def _side(inp: SideInput, edges: np.ndarray) -> Side:
     if inp.values is not None:
         finite = inp.values[np.isfinite(inp.values)]
         counts = counts_from_values(inp.values, edges)
-        return Side(inp.label, tuple(float(c) for c in counts), int(inp.values.size),
-                    int(finite.size), float(finite.mean()) if finite.size else None, inp.source)
+        return Side(
+            inp.label,
+            tuple(float(c) for c in counts),
+            int(inp.values.size),
+            int(finite.size),
+            float(finite.mean()) if finite.size else None,
+            inp.source,
+        )
     assert inp.summary is not None
     finite_n = int(inp.summary["finite"])
     counts = counts_from_quantiles(inp.summary["quantiles"], finite_n, edges)
-    return Side(inp.label, tuple(float(c) for c in counts), int(inp.summary["count"]), finite_n,
-                inp.summary.get("mean"), "summary")
+    return Side(
+        inp.label,
+        tuple(float(c) for c in counts),
+        int(inp.summary["count"]),
+        finite_n,
+        inp.summary.get("mean"),
+        "summary",
+    )
 
 
 def distribution(
@@ -181,8 +191,9 @@ def distribution(
     built = {name: _side(s, edges) for name, s in usable.items()}
     for name, side in built.items():
         if side.source == "summary":
-            notes.append(f"the {name}'s raw sample is gone; its bars come from the stored "
-                         "quantile summary")
+            notes.append(
+                f"the {name}'s raw sample is gone; its bars come from the stored quantile summary"
+            )
     return Distribution(
         tuple(float(e) for e in edges), built.get("candidate"), built.get("baseline"), tuple(notes)
     )
@@ -240,7 +251,8 @@ def segment_table(candidate: Sample, baseline: Sample | None = None) -> list[dic
                     "candidate_mean": cand_mean,
                     "baseline_mean": base_mean,
                     "mean_change": (cand_mean - base_mean)
-                    if cand_mean is not None and base_mean is not None else None,
+                    if cand_mean is not None and base_mean is not None
+                    else None,
                     "baseline_source": source,
                     "label_rate": _mean(label[mask]) if label is not None else None,
                 }

@@ -87,22 +87,28 @@ def assess(finding: Mapping[str, Any]) -> tuple[str, str]:
         if pvalue >= WEAK_P:
             return "marginal", f"{times} but {p}: a shift this size often happens by chance"
         return "likely", f"{times}, {p}: significant, though close to the limit"
-    source = ("reported by the trainer without an interval" if kind == "metric"
-              else "computed from the samples, with no p-value or interval")
+    source = (
+        "reported by the trainer without an interval"
+        if kind == "metric"
+        else "computed from the samples, with no p-value or interval"
+    )
     if ratio is not None and ratio >= CLEAR_METRIC_RATIO:
         return "clear", f"{times}; {source}"
     if ratio is not None:
         return "marginal", f"only {times}; {source}"
     base = finding.get("baseline_value")
     if value is not None and base:
-        return "likely", (f"changed by {value:+.3g} ({value / abs(base):+.1%} of the "
-                          f"{finding.get('against') or 'other'}'s value); {source}")
+        return "likely", (
+            f"changed by {value:+.3g} ({value / abs(base):+.1%} of the "
+            f"{finding.get('against') or 'other'}'s value); {source}"
+        )
     return "likely", source
 
 
 def failed_findings(verdict: Mapping[str, Any]) -> list[Mapping[str, Any]]:
     return [
-        f for f in verdict.get("findings", [])
+        f
+        for f in verdict.get("findings", [])
         if f.get("blocking", True) and f.get("outcome") in {"breach", "inconclusive"}
     ]
 
@@ -113,8 +119,10 @@ def headline(verdict: Mapping[str, Any]) -> str:
     overrides = verdict.get("overrides") or []
     if overrides:
         last = overrides[-1]
-        text += (f" (overridden to {last['decision'].upper()} by {last['actor']} "
-                 f"at {moment(last['created_at'])})")
+        text += (
+            f" (overridden to {last['decision'].upper()} by {last['actor']} "
+            f"at {moment(last['created_at'])})"
+        )
     elif verdict.get("effective_decision", verdict["decision"]) != verdict["decision"]:
         text += f" (overridden to {verdict['effective_decision'].upper()})"
     return text
@@ -166,8 +174,9 @@ def _changes(verdict: Mapping[str, Any], evidence: Mapping[str, Any] | None) -> 
     if evidence is None:
         for f in verdict.get("findings", []):
             if f.get("kind") == "drift" and f.get("baseline_value") is not None:
-                out.append(f"mean score {number(f['baseline_value'])} → "
-                           f"{number(f['candidate_value'])}")
+                out.append(
+                    f"mean score {number(f['baseline_value'])} → {number(f['candidate_value'])}"
+                )
                 break
         return out
     cand = evidence.get("candidate") or {}
@@ -177,13 +186,16 @@ def _changes(verdict: Mapping[str, Any], evidence: Mapping[str, Any] | None) -> 
     if cand.get("score_mean") is not None and base.get("score_mean") is not None:
         out.append(_change("mean score", base["score_mean"], cand["score_mean"]))
     if cand.get("nonfinite"):
-        out.append(f"{cand['nonfinite']:,} of {cand['sample_rows']:,} candidate scores are not "
-                   "finite (NaN, infinite or missing)")
+        out.append(
+            f"{cand['nonfinite']:,} of {cand['sample_rows']:,} candidate scores are not "
+            "finite (NaN, infinite or missing)"
+        )
     for name in sorted(set(cand.get("metrics", {})) & set(base.get("metrics", {}))):
         out.append(_change(name, base["metrics"][name], cand["metrics"][name]))
     if cand.get("code_version") != base.get("code_version"):
-        out.append(f"training code {base.get('code_version') or '?'} → "
-                   f"{cand.get('code_version') or '?'}")
+        out.append(
+            f"training code {base.get('code_version') or '?'} → {cand.get('code_version') or '?'}"
+        )
     if cand.get("trained_until") and base.get("trained_until"):
         out.append(_watermark(cand["trained_until"], base["trained_until"]))
     rows_c, rows_b = cand.get("rows_trained"), base.get("rows_trained")
@@ -202,26 +214,36 @@ def _next_steps(verdict: Mapping[str, Any], evidence: Mapping[str, Any] | None) 
     judged_against = verdict.get("baseline")
     if effective == "hold":
         if candidate_serving:
-            out.append(f"{key} still serves (nothing earlier to return to): roll back to another "
-                       f"snapshot: tidegate rollback {model} SNAPSHOT --reason \"...\"")
+            out.append(
+                f"{key} still serves (nothing earlier to return to): roll back to another "
+                f'snapshot: tidegate rollback {model} SNAPSHOT --reason "..."'
+            )
         elif serving and serving == judged_against:
             out.append(f"nothing to do to stay safe: the baseline {serving} keeps serving")
         elif serving:
-            out.append(f"{serving} was promoted since and serves now: this hold no longer "
-                       "blocks anything")
-        out.append(f"if the evidence is wrong (a known change, a false alarm): override to "
-                   f"promote: tidegate override {vid} --decision promote --reason \"...\"")
-        out.append("if holds repeat: read the trends on the model page; each new snapshot is "
-                   "judged against the same baseline until one is promoted")
+            out.append(
+                f"{serving} was promoted since and serves now: this hold no longer blocks anything"
+            )
+        out.append(
+            f"if the evidence is wrong (a known change, a false alarm): override to "
+            f'promote: tidegate override {vid} --decision promote --reason "..."'
+        )
+        out.append(
+            "if holds repeat: read the trends on the model page; each new snapshot is "
+            "judged against the same baseline until one is promoted"
+        )
     else:
         if candidate_serving:
-            out.append(f"{key} serves now; if it misbehaves, override to hold (the previous "
-                       f"baseline serves again): tidegate override {vid} --decision hold "
-                       "--reason \"...\"")
+            out.append(
+                f"{key} serves now; if it misbehaves, override to hold (the previous "
+                f"baseline serves again): tidegate override {vid} --decision hold "
+                '--reason "..."'
+            )
         elif serving:
             out.append(f"{serving} serves now")
-        out.append(f"to serve an earlier snapshot: tidegate rollback {model} SNAPSHOT "
-                   "--reason \"...\"")
+        out.append(
+            f'to serve an earlier snapshot: tidegate rollback {model} SNAPSHOT --reason "..."'
+        )
     return out
 
 
@@ -237,8 +259,10 @@ def briefing(
         advisories = [f for f in verdict.get("findings", []) if f.get("outcome") == "advisory"]
         why += [f"advisory (does not hold): {f['message']}" for f in advisories]
     for o in verdict.get("overrides") or []:
-        why.append(f"override to {o['decision']} by {o['actor']} at "
-                   f"{moment(o['created_at'])}: {o['reason']}")
+        why.append(
+            f"override to {o['decision']} by {o['actor']} at "
+            f"{moment(o['created_at'])}: {o['reason']}"
+        )
     if verdict.get("error"):
         how = ["the gate could not judge (fail closed): " + str(verdict["error"])]
     elif failed:
@@ -256,8 +280,9 @@ def briefing(
     }
 
 
-def sparkline(values: Sequence[float], top: float | None = None, *, ascii_only: bool = False
-              ) -> str:
+def sparkline(
+    values: Sequence[float], top: float | None = None, *, ascii_only: bool = False
+) -> str:
     """One character per value, height proportional to ``value / top`` (default: the largest
     value); zero is a space, any positive value at least the lowest block."""
     blocks = ASCII_BLOCKS if ascii_only else BLOCKS
@@ -272,8 +297,9 @@ def sparkline(values: Sequence[float], top: float | None = None, *, ascii_only: 
     return "".join(out)
 
 
-def distribution_lines(distribution: Mapping[str, Any] | None, *, ascii_only: bool = False
-                       ) -> list[str]:
+def distribution_lines(
+    distribution: Mapping[str, Any] | None, *, ascii_only: bool = False
+) -> list[str]:
     """Both sides of a distribution as sparklines on one scale, with their means."""
     if not distribution or not distribution.get("edges"):
         return ["score distribution: no finite scores stored"]
@@ -281,8 +307,10 @@ def distribution_lines(distribution: Mapping[str, Any] | None, *, ascii_only: bo
     sides = [s for s in (distribution.get("candidate"), distribution.get("baseline")) if s]
     top = max(max(s["shares"], default=0.0) for s in sides)
     width = max(len(s["label"]) for s in sides)
-    lines = [f"score distribution ({len(edges) - 1} bins from {number(edges[0])} to "
-             f"{number(edges[-1])}; bar height: share of rows, one scale):"]
+    lines = [
+        f"score distribution ({len(edges) - 1} bins from {number(edges[0])} to "
+        f"{number(edges[-1])}; bar height: share of rows, one scale):"
+    ]
     for s in sides:
         line = sparkline(s["shares"], top, ascii_only=ascii_only)
         lines.append(f"  {s['label']:<{width}} |{line}| mean {number(s.get('mean'))}")
@@ -297,8 +325,10 @@ def _finding_line(f: Mapping[str, Any]) -> list[str]:
     if f.get("limit") is not None:
         parts.append(f"limit {number(f['limit'])}")
     if f.get("baseline_value") is not None or f.get("candidate_value") is not None:
-        parts.append(f"baseline {number(f.get('baseline_value'))}, candidate "
-                     f"{number(f.get('candidate_value'))}")
+        parts.append(
+            f"baseline {number(f.get('baseline_value'))}, candidate "
+            f"{number(f.get('candidate_value'))}"
+        )
     if f.get("interval"):
         low, high = f["interval"]
         parts.append(f"interval [{number(low)}, {number(high)}]")
@@ -316,8 +346,10 @@ def segment_lines(segments: Sequence[Mapping[str, Any]]) -> list[str]:
         change = s.get("mean_change")
         tail = f" ({change:+.3g})" if change is not None else ""
         bad = f", {s['nonfinite']} not finite" if s.get("nonfinite") else ""
-        lines.append(f"  {s['segment']}={s['value']}: {s['rows']:,} rows{bad}; "
-                     f"{number(s.get('candidate_mean'))} vs {base}{tail}")
+        lines.append(
+            f"  {s['segment']}={s['value']}: {s['rows']:,} rows{bad}; "
+            f"{number(s.get('candidate_mean'))} vs {base}{tail}"
+        )
     return lines
 
 

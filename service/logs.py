@@ -24,7 +24,8 @@ class JsonFormatter(logging.Formatter):
 
     def format(self, record: logging.LogRecord) -> str:
         out: dict[str, Any] = {
-            "ts": datetime.fromtimestamp(record.created, UTC).isoformat(timespec="milliseconds")
+            "ts": datetime.fromtimestamp(record.created, UTC)
+            .isoformat(timespec="milliseconds")
             .replace("+00:00", "Z"),
             "level": record.levelname,
             "logger": record.name,
@@ -80,4 +81,3 @@ def configure(level: str = "INFO") -> None:
 def fields(**values: Any) -> dict[str, Any]:
     """``log.info("...", extra=fields(model=..., status=...))``."""
     return {"fields": values}
-

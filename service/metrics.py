@@ -95,7 +95,8 @@ class Metrics:
     def __init__(self) -> None:
         self._lock = threading.Lock()
         self.verdicts = Counter(
-            "tidegate_verdicts_total", "Verdicts stored, by model and decision.",
+            "tidegate_verdicts_total",
+            "Verdicts stored, by model and decision.",
             ("model", "decision"),
         )
         self.evaluation = Histogram(
@@ -104,7 +105,8 @@ class Metrics:
             ("model",),
         )
         self.requests = Counter(
-            "tidegate_http_requests_total", "HTTP requests answered, by method, route and status.",
+            "tidegate_http_requests_total",
+            "HTTP requests answered, by method, route and status.",
             ("method", "route", "status"),
         )
         self.errors = Counter(
@@ -113,7 +115,8 @@ class Metrics:
             ("route", "code"),
         )
         self.latency = Histogram(
-            "tidegate_http_request_duration_seconds", "Time to answer an HTTP request, by route.",
+            "tidegate_http_request_duration_seconds",
+            "Time to answer an HTTP request, by route.",
             ("route",),
         )
 
@@ -122,8 +125,9 @@ class Metrics:
             self.verdicts.inc(model, decision)
             self.evaluation.observe(seconds, model)
 
-    def request(self, *, method: str, route: str, status: int, code: str | None,
-                seconds: float) -> None:
+    def request(
+        self, *, method: str, route: str, status: int, code: str | None, seconds: float
+    ) -> None:
         with self._lock:
             self.requests.inc(method, route, str(status))
             self.latency.observe(seconds, route)
@@ -138,7 +142,12 @@ class Metrics:
 
         with self._lock:
             lines: list[str] = []
-            for metric in (self.verdicts, self.evaluation, self.requests, self.errors,
-                           self.latency):
+            for metric in (
+                self.verdicts,
+                self.evaluation,
+                self.requests,
+                self.errors,
+                self.latency,
+            ):
                 lines.extend(metric.lines(keep))
         return "\n".join(lines) + "\n"

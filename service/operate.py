@@ -67,21 +67,23 @@ def clean_reason(reason: str | None) -> str:
         raise InvalidInput("a reason is required: say why, for the audit log", field="reason")
     if len(text) > 2000:
         raise InvalidInput("the reason is longer than 2000 characters", field="reason")
-    if any((ord(c) < 32 and c not in "\t\n\r") or ord(c) == 127 or 0xD800 <= ord(c) <= 0xDFFF
-           for c in text):
+    if any(
+        (ord(c) < 32 and c not in "\t\n\r") or ord(c) == 127 or 0xD800 <= ord(c) <= 0xDFFF
+        for c in text
+    ):
         # PostgreSQL text cannot hold NUL; other control characters and lone surrogates are
         # never part of a reason
         raise InvalidInput("the reason holds a control character", field="reason")
     return text
 
 
-def _earlier_baseline(session: Session, *, model_id: int, snapshot_id: int
-                      ) -> SnapshotRow | None:
+def _earlier_baseline(session: Session, *, model_id: int, snapshot_id: int) -> SnapshotRow | None:
     """The most recent earlier baseline other than *snapshot_id* whose decision in force is
     still promote (a snapshot held by an override since is passed over)."""
     seen: set[int] = {snapshot_id}
     for promotion in session.scalars(
-        select(PromotionRow).where(PromotionRow.model_id == model_id)
+        select(PromotionRow)
+        .where(PromotionRow.model_id == model_id)
         .order_by(PromotionRow.id.desc())
     ):
         if promotion.snapshot_id in seen:
@@ -126,11 +128,20 @@ def override_verdict(
     row = repo.add_override(
         session, verdict_id=verdict.id, decision=decision, reason=reason, actor=actor, now=now
     )
-    target, note = _baseline_target(session, model=model, snapshot=snapshot, serving=serving,
-                                    decision=decision)
+    target, note = _baseline_target(
+        session, model=model, snapshot=snapshot, serving=serving, decision=decision
+    )
     if target is not None:
-        repo.set_baseline(session, model=model, snapshot=target, cause="override", actor=actor,
-                          reason=reason, verdict_id=verdict.id, now=now)
+        repo.set_baseline(
+            session,
+            model=model,
+            snapshot=target,
+            cause="override",
+            actor=actor,
+            reason=reason,
+            verdict_id=verdict.id,
+            now=now,
+        )
     baseline_after = target.key if target is not None else baseline_before
     repo.add_audit(
         session,
@@ -143,8 +154,9 @@ def override_verdict(
         reason=reason,
         now=now,
     )
-    return OverrideOutcome(row, verdict, model, snapshot, before, baseline_before, baseline_after,
-                           note)
+    return OverrideOutcome(
+        row, verdict, model, snapshot, before, baseline_before, baseline_after, note
+    )
 
 
 def _baseline_target(
@@ -176,8 +188,10 @@ def _baseline_target(
             f"{snapshot.key} keeps serving: no earlier baseline to return to. Roll back by hand "
             "to another snapshot if it must stop serving."
         )
-    return previous, (f"the baseline goes back to {previous.key}, the latest earlier "
-                      "baseline still in force as promote.")
+    return previous, (
+        f"the baseline goes back to {previous.key}, the latest earlier "
+        "baseline still in force as promote."
+    )
 
 
 def rollback(
@@ -202,6 +216,7 @@ def preview_override(session: Session, *, verdict: VerdictRow, decision: str) ->
     snapshot = repo.snapshot_by_id(session, snapshot_id=verdict.snapshot_id)
     assert model is not None and snapshot is not None
     serving = repo.snapshot_by_id(session, snapshot_id=model.baseline_id)
-    _, note = _baseline_target(session, model=model, snapshot=snapshot, serving=serving,
-                               decision=decision)
+    _, note = _baseline_target(
+        session, model=model, snapshot=snapshot, serving=serving, decision=decision
+    )
     return note

@@ -62,8 +62,9 @@ class ReplayResult:
         }
 
 
-def replay(session: Session, *, model_name: str, policy: Policy, limit: int,
-           history_limit: int = 200) -> ReplayResult:
+def replay(
+    session: Session, *, model_name: str, policy: Policy, limit: int, history_limit: int = 200
+) -> ReplayResult:
     """Replay the last *limit* verdicts of *model_name* under *policy* (see module doc)."""
     model = repo.get_model(session, name=model_name)
     if model is None:
@@ -89,9 +90,7 @@ def replay(session: Session, *, model_name: str, policy: Policy, limit: int,
         candidate = gate_snapshot(snap.id)
         baseline = gate_snapshot(verdict.baseline_id)
         try:
-            earlier = repo.history(
-                session, model_id=model.id, limit=depth, before_id=verdict.id
-            )
+            earlier = repo.history(session, model_id=model.id, limit=depth, before_id=verdict.id)
             inp = GateInput(
                 candidate=candidate,
                 baseline=baseline,

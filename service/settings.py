@@ -21,9 +21,7 @@ class Settings(BaseSettings):
         description="SQLAlchemy URL of the database: a SQLite file (default) or PostgreSQL "
         "(postgresql+psycopg://user@host/db).",
     )
-    policy_dir: Path = Field(
-        Path("config/policies"), description="Folder of policy TOML files."
-    )
+    policy_dir: Path = Field(Path("config/policies"), description="Folder of policy TOML files.")
     migrate_on_start: bool = Field(
         False, description="Upgrade the database to the current revision when the service starts."
     )
@@ -56,6 +54,8 @@ class Settings(BaseSettings):
     )
     log_level: str = Field("INFO", description="Log level of the service.")
     shutdown_grace_seconds: int = Field(
-        30, ge=0, description="On SIGTERM, how long requests in flight may take to finish before "
+        30,
+        ge=0,
+        description="On SIGTERM, how long requests in flight may take to finish before "
         "the service stops anyway, in seconds.",
     )

@@ -222,11 +222,13 @@ def verdict_evidence(session: Session, *, verdict: VerdictRow, bins: int = 30) -
     baseline = repo.snapshot_by_id(session, snapshot_id=verdict.baseline_id)
     cand_sample = (
         repo.load_sample(session, snapshot_id=snapshot.id)
-        if snapshot.sample_pruned_at is None else None
+        if snapshot.sample_pruned_at is None
+        else None
     )
     base_sample = (
         repo.load_sample(session, snapshot_id=baseline.id)
-        if baseline is not None and baseline.sample_pruned_at is None else None
+        if baseline is not None and baseline.sample_pruned_at is None
+        else None
     )
     cand_side = None
     if cand_sample is not None:
@@ -238,14 +240,16 @@ def verdict_evidence(session: Session, *, verdict: VerdictRow, bins: int = 30) -
     if baseline is not None and base_sample is not None:
         base_side = evidence.SideInput(f"baseline {baseline.key}", values=base_sample.score)
     elif paired is not None:
-        base_side = evidence.SideInput("baseline (scores on the same rows)", values=paired,
-                                       source="paired")
+        base_side = evidence.SideInput(
+            "baseline (scores on the same rows)", values=paired, source="paired"
+        )
     elif baseline is not None and baseline.summary:
         base_side = evidence.SideInput(f"baseline {baseline.key}", summary=baseline.summary)
     dist = evidence.distribution(cand_side, base_side, bins=bins)
     serving = repo.snapshot_by_id(session, snapshot_id=model.baseline_id)
     promoted = [
-        p for p in promotions_view(session, model=model, limit=200)
+        p
+        for p in promotions_view(session, model=model, limit=200)
         if p["snapshot"] == snapshot.key or p["previous"] == snapshot.key
     ]
     return {

@@ -144,7 +144,9 @@ def new_postgres_url(request: pytest.FixtureRequest) -> Iterator[Callable[[], st
 
 @pytest.fixture(params=BACKENDS)
 def database_url(
-    request: pytest.FixtureRequest, tmp_path: Path, sqlite_template: Path,
+    request: pytest.FixtureRequest,
+    tmp_path: Path,
+    sqlite_template: Path,
     new_postgres_url: Callable[[], str],
 ) -> str:
     """A fresh, migrated database: a SQLite file, or a PostgreSQL schema."""
@@ -166,20 +168,25 @@ def postgres_url(new_postgres_url: Callable[[], str]) -> str:
 
 
 def settings_for(url: str, **overrides: Any) -> Settings:
-    values: dict[str, Any] = {"database_url": url, "auth": "tokens",
-                              "policy_dir": Path("config/policies")}
+    values: dict[str, Any] = {
+        "database_url": url,
+        "auth": "tokens",
+        "policy_dir": Path("config/policies"),
+    }
     values.update(overrides)
     return Settings(**values)
 
 
-def make_token(settings: Settings, role: str, models: tuple[str, ...] = ("*",),
-               label: str = "") -> tokens.NewToken:
+def make_token(
+    settings: Settings, role: str, models: tuple[str, ...] = ("*",), label: str = ""
+) -> tokens.NewToken:
     """Make an API token directly in the database (as ``tidegate token create`` does)."""
     engine = store_db.make_engine(settings)
     try:
         with store_db.transaction(store_db.make_sessionmaker(engine)) as session:
-            return tokens.create_token(session, role=role, models=models, label=label,
-                                       now=datetime.now(UTC))
+            return tokens.create_token(
+                session, role=role, models=models, label=label, now=datetime.now(UTC)
+            )
     finally:
         engine.dispose()
 
@@ -200,8 +207,9 @@ class Api:
         return make_token(self.settings, role, models).secret
 
     def post(self, model: str, body: dict[str, Any], token: str | None = None) -> Any:
-        return self.client.post(f"/v1/models/{model}/snapshots", json=body,
-                                headers=self.headers(token))
+        return self.client.post(
+            f"/v1/models/{model}/snapshots", json=body, headers=self.headers(token)
+        )
 
 
 @pytest.fixture
@@ -232,7 +240,12 @@ START = datetime(2026, 12, 1, 0, 0, tzinfo=UTC)
 
 
 def snapshot_body(
-    key: str, *, step: int = 0, rows: int = 40, shift: float = 0.0, seed: int = 7,
+    key: str,
+    *,
+    step: int = 0,
+    rows: int = 40,
+    shift: float = 0.0,
+    seed: int = 7,
     **extra: Any,
 ) -> dict[str, Any]:
     """A valid post: *rows* scores in (0, 1) (beta-distributed, seeded), labels, a segment;

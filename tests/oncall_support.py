@@ -79,8 +79,15 @@ def _holdout(seed: int) -> dict[str, np.ndarray]:
     }
 
 
-def snapshot_body(key: str, step: int, *, shifted: bool = False, seed: int = 7,
-                  at: datetime = START, auc: float | None = None) -> dict[str, Any]:
+def snapshot_body(
+    key: str,
+    step: int,
+    *,
+    shifted: bool = False,
+    seed: int = 7,
+    at: datetime = START,
+    auc: float | None = None,
+) -> dict[str, Any]:
     """One post: the same holdout rows every time, scores near the holdout's own unless
     *shifted* (then moved up by 0.3, capped below 1)."""
     h = _holdout(seed)
@@ -114,8 +121,9 @@ SCENARIO: list[tuple[str, str, bool]] = [
 ]
 
 
-def load(post: Callable[[str, dict[str, Any]], dict[str, Any]], *,
-         at: datetime = START) -> dict[str, dict[str, Any]]:
+def load(
+    post: Callable[[str, dict[str, Any]], dict[str, Any]], *, at: datetime = START
+) -> dict[str, dict[str, Any]]:
     """Post the scenario in order; returns each snapshot key's verdict."""
     verdicts = {}
     for step, (model, key, shifted) in enumerate(SCENARIO, start=1):
@@ -145,8 +153,9 @@ class Harness:
 
 
 def migrated_settings(folder: Path) -> Settings:
-    settings = Settings(database_url=f"sqlite:///{folder / 'tidegate.db'}", auth="open",
-                        policy_dir=folder)
+    settings = Settings(
+        database_url=f"sqlite:///{folder / 'tidegate.db'}", auth="open", policy_dir=folder
+    )
     db.upgrade(settings)
     return settings
 
@@ -157,6 +166,7 @@ def harness(folder: Path) -> Iterator[Harness]:
     clock = Clock()
     app = create_app(migrated_settings(folder), policies=policies(), clock=clock)
     with TestClient(app) as http:
+
         def post(model: str, body: dict[str, Any]) -> dict[str, Any]:
             clock.advance(minutes=15)
             response = http.post(f"/v1/models/{model}/snapshots", json=body)
@@ -193,15 +203,33 @@ def live_service(folder: Path) -> Iterator[LiveService]:
     (folder / "bookshop.toml").write_text(POLICY, encoding="utf-8")
     settings = migrated_settings(folder)
     port = free_port()
-    env = {**os.environ, "TIDEGATE_DATABASE_URL": settings.database_url,
-           "TIDEGATE_POLICY_DIR": str(folder), "TIDEGATE_AUTH": "open",
-           "PYTHONPATH": str(ROOT)}
+    env = {
+        **os.environ,
+        "TIDEGATE_DATABASE_URL": settings.database_url,
+        "TIDEGATE_POLICY_DIR": str(folder),
+        "TIDEGATE_AUTH": "open",
+        "PYTHONPATH": str(ROOT),
+    }
     log = folder / "service.log"
     with log.open("wb") as out:
         process = subprocess.Popen(
-            [sys.executable, "-m", "uvicorn", "--factory", "service.app:create_app",
-             "--host", "127.0.0.1", "--port", str(port), "--log-level", "warning"],
-            cwd=ROOT, env=env, stdout=out, stderr=subprocess.STDOUT,
+            [
+                sys.executable,
+                "-m",
+                "uvicorn",
+                "--factory",
+                "service.app:create_app",
+                "--host",
+                "127.0.0.1",
+                "--port",
+                str(port),
+                "--log-level",
+                "warning",
+            ],
+            cwd=ROOT,
+            env=env,
+            stdout=out,
+            stderr=subprocess.STDOUT,
         )
     url = f"http://127.0.0.1:{port}"
     try:
@@ -216,6 +244,7 @@ def live_service(folder: Path) -> Iterator[LiveService]:
                 raise RuntimeError("the service did not start:\n" + log.read_text())
             time.sleep(0.2)
         with httpx.Client(base_url=url, timeout=30) as http:
+
             def post(model: str, body: dict[str, Any]) -> dict[str, Any]:
                 response = http.post(f"/v1/models/{model}/snapshots", json=body)
                 assert response.status_code == 201, response.text

@@ -28,8 +28,14 @@ def free_port() -> int:
 class Server:
     """``tidegate serve`` on 127.0.0.1, its standard error kept in a file."""
 
-    def __init__(self, database_url: str, folder: Path, *, workers: int = 1,
-                 env: dict[str, str] | None = None) -> None:
+    def __init__(
+        self,
+        database_url: str,
+        folder: Path,
+        *,
+        workers: int = 1,
+        env: dict[str, str] | None = None,
+    ) -> None:
         self.database_url = database_url
         self.folder = folder
         self.workers = workers
@@ -58,11 +64,22 @@ class Server:
             "PYTHONUNBUFFERED": "1",
             **self.extra_env,
         }
-        args = [sys.executable, "-m", "service.cli", "serve", "--host", "127.0.0.1",
-                "--port", str(self.port), "--workers", str(self.workers)]
+        args = [
+            sys.executable,
+            "-m",
+            "service.cli",
+            "serve",
+            "--host",
+            "127.0.0.1",
+            "--port",
+            str(self.port),
+            "--workers",
+            str(self.workers),
+        ]
         log = self.log_path.open("wb")
-        self.proc = subprocess.Popen(args, cwd=ROOT, env=env, stdout=log, stderr=subprocess.STDOUT,
-                                     start_new_session=True)
+        self.proc = subprocess.Popen(
+            args, cwd=ROOT, env=env, stdout=log, stderr=subprocess.STDOUT, start_new_session=True
+        )
         deadline = time.monotonic() + timeout
         while time.monotonic() < deadline:
             if self.proc.poll() is not None:

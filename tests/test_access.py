@@ -62,13 +62,20 @@ class World:
         self.verdict_id = first.json()["verdict_id"]
         self.serial = 0
         for model, key in ((MODEL, "k1"), (OTHER, "o1")):  # an audit entry for each model
-            pinned = api.client.put(f"/v1/models/{model}/reference", headers=api.headers(),
-                                    json={"snapshot": key, "reason": "walk"})
+            pinned = api.client.put(
+                f"/v1/models/{model}/reference",
+                headers=api.headers(),
+                json={"snapshot": key, "reason": "walk"},
+            )
             assert pinned.status_code == 200, pinned.text
 
     def url(self, path: str) -> str:
-        values = {"model": MODEL, "key": "k1", "verdict_id": str(self.verdict_id),
-                  "token_id": str(tokens_made(self.api))}
+        values = {
+            "model": MODEL,
+            "key": "k1",
+            "verdict_id": str(self.verdict_id),
+            "token_id": str(tokens_made(self.api)),
+        }
         return re.sub(r"\{(\w+)\}", lambda m: values[m.group(1)], path)
 
     def _admin_get(self, path: str) -> Any:
@@ -105,11 +112,17 @@ class World:
         if (method, path) == ("POST", "/v1/verdicts/{verdict_id}/override"):
             return "json", {"decision": self.other_decision(), "reason": "walk"}
         if (method, path) == ("POST", "/ui/verdicts/{verdict_id}/override"):
-            return "form", {"decision": self.other_decision(), "reason": "walk",
-                            "csrf_token": self.form_token()}
+            return "form", {
+                "decision": self.other_decision(),
+                "reason": "walk",
+                "csrf_token": self.form_token(),
+            }
         if (method, path) == ("POST", "/ui/models/{model}/baseline"):
-            return "form", {"snapshot": self.other_baseline(), "reason": "walk",
-                            "csrf_token": self.form_token()}
+            return "form", {
+                "snapshot": self.other_baseline(),
+                "reason": "walk",
+                "csrf_token": self.form_token(),
+            }
         if (method, path) == ("POST", "/ui/sign-in"):
             return "form", {"token": "tg_x", "csrf_token": "x"}
         if (method, path) == ("POST", "/ui/sign-out"):
@@ -123,8 +136,9 @@ class World:
         headers = {"Authorization": f"Bearer {token}"} if token is not None else {}
         kind, payload = body if body is not None else ("json", None)
         kwargs: dict[str, Any] = {"json": payload} if kind == "json" else {"data": payload}
-        return self.api.client.request(method, self.url(route.path), headers=headers,
-                                       follow_redirects=False, **kwargs)
+        return self.api.client.request(
+            method, self.url(route.path), headers=headers, follow_redirects=False, **kwargs
+        )
 
 
 def refused_without_sign_in(method: str, route: RouteInfo, response: Any) -> bool:
@@ -133,18 +147,22 @@ def refused_without_sign_in(method: str, route: RouteInfo, response: Any) -> boo
     if route.path.startswith("/ui/"):
         if method == "GET":
             return response.status_code == 303 and response.headers["location"].startswith(
-                "/ui/sign-in?next=")
+                "/ui/sign-in?next="
+            )
         return response.status_code == 401
-    return (response.status_code == 401
-            and response.json()["error"]["code"] == "unauthorized"
-            and response.headers["www-authenticate"].startswith("Bearer"))
+    return (
+        response.status_code == 401
+        and response.json()["error"]["code"] == "unauthorized"
+        and response.headers["www-authenticate"].startswith("Bearer")
+    )
 
 
 def tokens_made(api: Api) -> int:
     """A token id that exists (a throwaway viewer, made once per app)."""
     if not hasattr(api, "_victim"):
-        made = api.client.post("/v1/tokens", json={"role": "viewer", "models": ["x"]},
-                               headers=api.headers()).json()
+        made = api.client.post(
+            "/v1/tokens", json={"role": "viewer", "models": ["x"]}, headers=api.headers()
+        ).json()
         api._victim = made["id"]  # type: ignore[attr-defined]
     return int(api._victim)  # type: ignore[attr-defined]
 
@@ -157,8 +175,10 @@ def test_every_route_declares_its_access(api: Api) -> None:
             if route.path not in DOCUMENTATION and not route.path.startswith("/static"):
                 undeclared.append(f"{route.path} is not an API route and not documentation")
         elif not route.access:
-            undeclared.append(f"{sorted(route.methods)} {route.path} declares no access "
-                              "(add Allowed(action) or PUBLIC, see service/api/deps.py)")
+            undeclared.append(
+                f"{sorted(route.methods)} {route.path} declares no access "
+                "(add Allowed(action) or PUBLIC, see service/api/deps.py)"
+            )
         elif "public" in route.access and len(route.access) > 1:
             undeclared.append(f"{route.path} is both public and protected")
     assert not undeclared, "\n".join(undeclared)
@@ -167,10 +187,13 @@ def test_every_route_declares_its_access(api: Api) -> None:
 def test_every_route_refuses_callers_without_a_valid_token(api: Api) -> None:
     world = World(api)
     revoked = tokens_made(api)
-    revoked_secret = api.client.post("/v1/tokens", json={"role": "admin"},
-                                     headers=api.headers()).json()
-    assert api.client.delete(f"/v1/tokens/{revoked_secret['id']}",
-                             headers=api.headers()).status_code == 200
+    revoked_secret = api.client.post(
+        "/v1/tokens", json={"role": "admin"}, headers=api.headers()
+    ).json()
+    assert (
+        api.client.delete(f"/v1/tokens/{revoked_secret['id']}", headers=api.headers()).status_code
+        == 200
+    )
     assert revoked
     bad_tokens = {
         "none": None,
@@ -188,7 +211,12 @@ def test_every_route_refuses_callers_without_a_valid_token(api: Api) -> None:
                 assert response.status_code < 500, (label, method, route.path)
                 continue
             assert refused_without_sign_in(method, route, response), (
-                label, method, route.path, response.status_code, response.text[:200])
+                label,
+                method,
+                route.path,
+                response.status_code,
+                response.text[:200],
+            )
             checked += 1
     assert checked >= 4 * 22  # 22 protected operations today; more as routes are added
 
@@ -223,8 +251,9 @@ def test_every_route_checks_the_model_scope(api: Api) -> None:
         if not route.access or route.access == ("public",):
             continue
         (action,) = set(route.access)
-        role = next(r for r in ("viewer", "trainer", "operator", "admin")
-                    if action in ROLE_ACTIONS[r])
+        role = next(
+            r for r in ("viewer", "trainer", "operator", "admin") if action in ROLE_ACTIONS[r]
+        )
         token = scoped[role]
         response = world.call(method, route, token)
         if "{model}" in route.path:
@@ -265,11 +294,15 @@ def test_scope_patterns_and_posts_for_other_models(api: Api) -> None:
 def test_open_mode_lets_everyone_in_and_names_the_actor(make_api: Any) -> None:
     api = make_api(auth="open")
     for step, key in enumerate(("a", "b"), start=1):
-        response = api.client.post("/v1/models/m/snapshots", json=snapshot_body(key, step=step),
-                                   headers={"X-Actor": "dana"})
+        response = api.client.post(
+            "/v1/models/m/snapshots",
+            json=snapshot_body(key, step=step),
+            headers={"X-Actor": "dana"},
+        )
         assert response.status_code == 201
-    put = api.client.put("/v1/models/m/baseline", json={"snapshot": "a", "reason": "r"},
-                         headers={"X-Actor": "dana"})
+    put = api.client.put(
+        "/v1/models/m/baseline", json={"snapshot": "a", "reason": "r"}, headers={"X-Actor": "dana"}
+    )
     assert put.status_code == 200
     audit = api.client.get("/v1/audit", params={"model": "m"}).json()["data"]
     assert audit[0]["actor"] == "dana"

@@ -19,8 +19,9 @@ def service(tmp_path_factory: pytest.TempPathFactory) -> Iterator[LiveService]:
         yield running
 
 
-def run(capsys: pytest.CaptureFixture[str], service: LiveService,
-        *argv: str) -> tuple[int, str, str]:
+def run(
+    capsys: pytest.CaptureFixture[str], service: LiveService, *argv: str
+) -> tuple[int, str, str]:
     code = cli.main([*argv, "--url", service.url])
     out, err = capsys.readouterr()
     return code, out, err
@@ -58,11 +59,20 @@ def test_why_json_and_errors(service: LiveService, capsys: pytest.CaptureFixture
     assert code == cli.EXIT_ERROR and "404 not_found" in err
 
 
-def test_override_rollback_and_audit(service: LiveService,
-                                     capsys: pytest.CaptureFixture[str]) -> None:
+def test_override_rollback_and_audit(
+    service: LiveService, capsys: pytest.CaptureFixture[str]
+) -> None:
     vid = str(service.verdicts["s04"]["verdict_id"])
-    code, out, _ = run(capsys, service, "override", vid, "--decision", "promote",
-                       "--reason", "planned catalogue relaunch")
+    code, out, _ = run(
+        capsys,
+        service,
+        "override",
+        vid,
+        "--decision",
+        "promote",
+        "--reason",
+        "planned catalogue relaunch",
+    )
     assert code == 0
     assert "s04 (verdict " in out and "hold -> promote" in out
     assert "baseline: s03 -> s04" in out and "s04 becomes the baseline, replacing s03" in out
@@ -70,8 +80,9 @@ def test_override_rollback_and_audit(service: LiveService,
     code, _, err = run(capsys, service, "override", vid, "--decision", "promote", "--reason", "x")
     assert code == cli.EXIT_ERROR and "409 conflict" in err
 
-    code, out, _ = run(capsys, service, "rollback", "shelf-ranker", "s02",
-                       "--reason", "broken join since s03")
+    code, out, _ = run(
+        capsys, service, "rollback", "shelf-ranker", "s02", "--reason", "broken join since s03"
+    )
     assert code == 0
     assert out.strip() == "shelf-ranker: baseline is now s02 (was s04; rollback)"
 
@@ -84,16 +95,19 @@ def test_override_rollback_and_audit(service: LiveService,
     assert "decision hold, baseline s03 -> decision promote, baseline s04" in lines[3]
     assert lines[-1].startswith("more: tidegate audit --cursor ")
     cursor = lines[-1].split()[4]
-    code, out, _ = run(capsys, service, "audit", "--model", "shelf-ranker", "--cursor", cursor,
-                       "--json")
+    code, out, _ = run(
+        capsys, service, "audit", "--model", "shelf-ranker", "--cursor", cursor, "--json"
+    )
     rest = json.loads(out)
     assert [e["action"] for e in rest["data"]] == ["baseline.verdict"] * 3
 
 
 def test_reason_is_required_on_the_command_line(capsys: pytest.CaptureFixture[str]) -> None:
-    for argv in (["override", "6", "--decision", "promote"],
-                 ["rollback", "shelf-ranker", "s01"],
-                 ["override", "6", "--decision", "maybe", "--reason", "x"]):
+    for argv in (
+        ["override", "6", "--decision", "promote"],
+        ["rollback", "shelf-ranker", "s01"],
+        ["override", "6", "--decision", "maybe", "--reason", "x"],
+    ):
         with pytest.raises(SystemExit) as exc:
             cli.main(argv)
         assert exc.value.code == 2

@@ -25,16 +25,28 @@ def run(capsys: pytest.CaptureFixture[str], *argv: str) -> tuple[int, str, str]:
 
 def test_token_create_list_revoke(cli_env: Api, capsys: pytest.CaptureFixture[str]) -> None:
     api = cli_env
-    code, out, err = run(capsys, "token", "create", "--role", "trainer", "--models",
-                         "shelf-*,also-read", "--label", "bramble-trainer")
+    code, out, err = run(
+        capsys,
+        "token",
+        "create",
+        "--role",
+        "trainer",
+        "--models",
+        "shelf-*,also-read",
+        "--label",
+        "bramble-trainer",
+    )
     assert code == 0
     secret = out.strip()
     assert secret.startswith("tg_") and "shown this once" in err
     # the token works for its models and role only
     assert api.post("shelf-ranker", snapshot_body("a", step=1), secret).status_code == 201
     assert api.post("other", snapshot_body("a", step=1), secret).status_code == 403
-    put = api.client.put("/v1/models/shelf-ranker/baseline", headers=api.headers(secret),
-                         json={"snapshot": "a", "reason": "r"})
+    put = api.client.put(
+        "/v1/models/shelf-ranker/baseline",
+        headers=api.headers(secret),
+        json={"snapshot": "a", "reason": "r"},
+    )
     assert put.status_code == 403
 
     code, out, _ = run(capsys, "token", "list", "--json")

@@ -131,8 +131,9 @@ def test_every_write_transaction_starts_with_begin_immediate(api: Api) -> None:
     try:
         assert api.post("m", snapshot_body("a", step=1)).status_code == 201
         assert api.post("m", snapshot_body("b", step=2)).status_code == 201
-        put = api.client.put("/v1/models/m/baseline", json={"snapshot": "a", "reason": "r"},
-                             headers=api.headers())
+        put = api.client.put(
+            "/v1/models/m/baseline", json={"snapshot": "a", "reason": "r"}, headers=api.headers()
+        )
         assert put.status_code == 200
         assert api.client.get("/v1/models/m", headers=api.headers()).status_code == 200
     finally:
@@ -157,8 +158,11 @@ def test_postgres_locks_the_model_row(postgres_url: str) -> None:
 
     engine = store_db.make_engine(Settings(database_url=postgres_url))
     seen: list[str] = []
-    event.listen(engine, "before_cursor_execute",
-                 lambda conn, cur, statement, *a: seen.append(" ".join(statement.split())))
+    event.listen(
+        engine,
+        "before_cursor_execute",
+        lambda conn, cur, statement, *a: seen.append(" ".join(statement.split())),
+    )
     from datetime import UTC, datetime
 
     with store_db.transaction(store_db.make_sessionmaker(engine)) as session:
@@ -168,10 +172,13 @@ def test_postgres_locks_the_model_row(postgres_url: str) -> None:
     assert seen[1].startswith("SELECT") and seen[1].endswith("FOR UPDATE")
 
 
-def concurrent_posts(post: Callable[[str, dict[str, Any]], Any], *, threads: int = THREADS,
-                     per_thread: int = POSTS_PER_THREAD,
-                     models: tuple[str, ...] = ("shelf-ranker", "shelf-ranker", "also-read"),
-                     ) -> list[tuple[str, int, dict[str, Any]]]:
+def concurrent_posts(
+    post: Callable[[str, dict[str, Any]], Any],
+    *,
+    threads: int = THREADS,
+    per_thread: int = POSTS_PER_THREAD,
+    models: tuple[str, ...] = ("shelf-ranker", "shelf-ranker", "also-read"),
+) -> list[tuple[str, int, dict[str, Any]]]:
     """*threads* clients posting *per_thread* snapshots each at once, two thirds to one model
     and a third to another (posts for different models do not wait for each other); a third of
     the posts are sent twice (a retry racing its original). Watermarks interleave, so whichever

@@ -54,9 +54,11 @@ def test_summary_of_a_sample_rebins_close_to_the_sample() -> None:
 
 def test_collapsed_output_puts_all_mass_in_one_bin() -> None:
     scores = np.full(300, 0.31)
-    dist = evidence.distribution(evidence.SideInput("c", values=scores),
-                                 evidence.SideInput("b", summary=codec.summarise(scores).to_dict()),
-                                 bins=10)
+    dist = evidence.distribution(
+        evidence.SideInput("c", values=scores),
+        evidence.SideInput("b", summary=codec.summarise(scores).to_dict()),
+        bins=10,
+    )
     assert dist.candidate is not None and dist.baseline is not None
     assert max(dist.candidate.shares()) == 1.0
     assert max(dist.baseline.shares()) == pytest.approx(1.0)
@@ -73,8 +75,10 @@ def test_common_edges_span_both_sides() -> None:
 
 
 def test_side_without_finite_scores_is_left_out_with_a_note() -> None:
-    dist = evidence.distribution(evidence.SideInput("c", values=np.array([np.nan, np.nan])),
-                                 evidence.SideInput("b", values=np.array([0.2, 0.3])))
+    dist = evidence.distribution(
+        evidence.SideInput("c", values=np.array([np.nan, np.nan])),
+        evidence.SideInput("b", values=np.array([0.2, 0.3])),
+    )
     assert dist.candidate is None and dist.baseline is not None
     assert dist.notes == ("the candidate has no finite scores to draw",)
 
@@ -87,8 +91,9 @@ def test_segment_table_matches_pandas_groupby() -> None:
     score[:5] = np.nan
     paired = rng.random(n)
     label = (rng.random(n) < 0.3).astype(float)
-    sample = Sample({"score": score, "baseline_score": paired, "label": label,
-                     "segment.device": device})
+    sample = Sample(
+        {"score": score, "baseline_score": paired, "label": label, "segment.device": device}
+    )
     rows = {r["value"]: r for r in evidence.segment_table(sample)}
     frame = pd.DataFrame({"device": device, "score": score, "paired": paired, "label": label})
     grouped = frame.groupby("device")  # pandas reference; mean() skips NaN
@@ -105,10 +110,18 @@ def test_segment_table_matches_pandas_groupby() -> None:
 
 
 def test_segment_table_uses_baseline_sample_when_not_paired() -> None:
-    cand = Sample({"score": np.array([0.2, 0.4, 0.6]),
-                   "segment.device": np.array(["app", "app", "web"], dtype=object)})
-    base = Sample({"score": np.array([0.1, 0.3, 0.5, 0.9]),
-                   "segment.device": np.array(["app", "web", "web", "web"], dtype=object)})
+    cand = Sample(
+        {
+            "score": np.array([0.2, 0.4, 0.6]),
+            "segment.device": np.array(["app", "app", "web"], dtype=object),
+        }
+    )
+    base = Sample(
+        {
+            "score": np.array([0.1, 0.3, 0.5, 0.9]),
+            "segment.device": np.array(["app", "web", "web", "web"], dtype=object),
+        }
+    )
     rows = {r["value"]: r for r in evidence.segment_table(cand, base)}
     assert rows["app"]["baseline_mean"] == pytest.approx(0.1)
     assert rows["web"]["baseline_mean"] == pytest.approx((0.3 + 0.5 + 0.9) / 3)
@@ -118,10 +131,13 @@ def test_segment_table_uses_baseline_sample_when_not_paired() -> None:
 
 def test_finding_segment_rows_are_collected_and_tagged() -> None:
     findings = [
-        {"check": "seg-auc", "details": {"segments": [{"segment": "device=app", "auc": 0.7},
-                                                      "not a row"]}},
+        {
+            "check": "seg-auc",
+            "details": {"segments": [{"segment": "device=app", "auc": 0.7}, "not a row"]},
+        },
         {"check": "score-psi", "details": {"edges": [0.1]}},
         {"check": "odd", "details": {"segments": "nope"}},
     ]
     assert evidence.finding_segment_rows(findings) == [
-        {"check": "seg-auc", "segment": "device=app", "auc": 0.7}]
+        {"check": "seg-auc", "segment": "device=app", "auc": 0.7}
+    ]

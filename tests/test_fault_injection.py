@@ -112,8 +112,10 @@ def test_every_statement_of_a_post_can_fail_without_leaving_half_a_post(open_api
             retry = post(api, body)
             assert retry.status_code in (200, 201), (k, retry.text)
             assert retry.status_code == (200 if response.status_code < 300 else 201)
-        print(f"fault injection on {api.settings.database_url.split(':')[0]}: "
-              f"{statements} statements + commit: {dict(outcomes)}")
+        print(
+            f"fault injection on {api.settings.database_url.split(':')[0]}: "
+            f"{statements} statements + commit: {dict(outcomes)}"
+        )
         assert outcomes["error 503"] >= statements // 2
     finally:
         fault.remove()

@@ -30,8 +30,12 @@ from tests.test_server_process import record
 
 EXAMPLES = 25
 ADMIN_TOKEN_ID = 1  # make_api makes the admin token first
-CHECKS = [not_a_server_error, status_code_conformance, content_type_conformance,
-          response_schema_conformance]
+CHECKS = [
+    not_a_server_error,
+    status_code_conformance,
+    content_type_conformance,
+    response_schema_conformance,
+]
 
 
 @pytest.fixture
@@ -51,11 +55,17 @@ def test_fuzz_every_operation_from_the_openapi_schema(seeded: Api) -> None:
     cases: Counter[str] = Counter()
     statuses: Counter[int] = Counter()
     operations = [result.ok() for result in schema.get_all_operations()]
+
     def fuzzer(operation: Any, mode: GenerationMode) -> Any:
         checks = CHECKS + ([negative_data_rejection] if mode is GenerationMode.NEGATIVE else [])
 
-        @settings(max_examples=EXAMPLES, deadline=None, derandomize=True, database=None,
-                  suppress_health_check=list(HealthCheck))
+        @settings(
+            max_examples=EXAMPLES,
+            deadline=None,
+            derandomize=True,
+            database=None,
+            suppress_health_check=list(HealthCheck),
+        )
         @given(case=operation.as_strategy(generation_mode=mode))
         def run(case: schemathesis.Case) -> None:
             token_id = str((case.path_parameters or {}).get("token_id", ""))
@@ -76,10 +86,15 @@ def test_fuzz_every_operation_from_the_openapi_schema(seeded: Api) -> None:
                 # nothing to make invalid (an operation without parameters or body)
                 assert mode is GenerationMode.NEGATIVE, operation.path
     total = sum(cases.values())
-    record(f"fuzz-{api.settings.database_url.split(':')[0].split('+')[0]}", {
-        "cases": total, "operations": len(cases), "examples_per_operation_and_mode": EXAMPLES,
-        "statuses": dict(sorted(statuses.items())),
-    })
+    record(
+        f"fuzz-{api.settings.database_url.split(':')[0].split('+')[0]}",
+        {
+            "cases": total,
+            "operations": len(cases),
+            "examples_per_operation_and_mode": EXAMPLES,
+            "statuses": dict(sorted(statuses.items())),
+        },
+    )
     # every operation ran (those without parameters have a single distinct case)
     assert set(cases) == {f"{op.method.upper()} {op.path}" for op in operations}
     assert len(cases) >= 14 and total >= 10 * EXAMPLES

@@ -40,8 +40,10 @@ def strict_json(text: str) -> Any:
 def row_counts(api: Api) -> dict[str, int]:
     engine = store_db.make_engine(api.settings)
     with store_db.read_transaction(store_db.make_sessionmaker(engine)) as session:
-        out = {t.name: int(session.scalar(select(func.count()).select_from(t)) or 0)
-               for t in Base.metadata.sorted_tables}
+        out = {
+            t.name: int(session.scalar(select(func.count()).select_from(t)) or 0)
+            for t in Base.metadata.sorted_tables
+        }
     engine.dispose()
     return out
 
@@ -101,110 +103,343 @@ BAD_INPUTS = [
     Bad("body is not UTF-8", 422, "invalid_json", None, raw=b'{"key": "\xff\xfe"}'),
     Bad("body is a JSON array", 422, "invalid_request", None, raw=b"[]"),
     Bad("body is JSON null", 422, "invalid_request", None, raw=b"null"),
-    Bad("Content-Type is not JSON", 415, "unsupported_media_type", None,
-        raw=json.dumps(snapshot_body("ct")).encode(), content_type="text/plain"),
-    Bad("body larger than the limit", 413, "payload_too_large", None,
-        raw=b'{"key": "' + b"x" * (MAX_BODY + 10) + b'"}'),
-    Bad("JSON nested 5,000 deep", 422, "invalid_json", None,
-        raw=b'{"key": "d", "sample": {"score": ' + b"[" * 5000 + b"]" * 5000 + b"}}"),
+    Bad(
+        "Content-Type is not JSON",
+        415,
+        "unsupported_media_type",
+        None,
+        raw=json.dumps(snapshot_body("ct")).encode(),
+        content_type="text/plain",
+    ),
+    Bad(
+        "body larger than the limit",
+        413,
+        "payload_too_large",
+        None,
+        raw=b'{"key": "' + b"x" * (MAX_BODY + 10) + b'"}',
+    ),
+    Bad(
+        "JSON nested 5,000 deep",
+        422,
+        "invalid_json",
+        None,
+        raw=b'{"key": "d", "sample": {"score": ' + b"[" * 5000 + b"]" * 5000 + b"}}",
+    ),
     # fields
     Bad("unknown field", 422, "invalid_request", "colour", setter("colour", value="blue")),
     Bad("key missing", 422, "invalid_request", "key", remover("key")),
     Bad("key with a slash", 422, "invalid_request", "key", setter("key", value="a/b")),
-    Bad("key with a control character", 422, "invalid_request", "key",
-        setter("key", value="a\nb")),
-    Bad("key longer than 200 characters", 422, "invalid_request", "key",
-        setter("key", value="k" * 201)),
-    Bad("text with a lone surrogate", 422, "invalid_request", "parent",
-        setter("parent", value="\ud800")),
-    Bad("trained_until without a time zone", 422, "invalid_request", "trained_until",
-        setter("trained_until", value="2026-12-01T02:44:00")),
-    Bad("trained_until not a time", 422, "invalid_request", "trained_until",
-        setter("trained_until", value="yesterday")),
-    Bad("trained_until NaN", 422, "invalid_request", "trained_until",
-        setter("trained_until", value=NAN)),
-    Bad("rows_trained negative", 422, "invalid_request", "rows_trained",
-        setter("rows_trained", value=-1)),
-    Bad("rows_trained above 2^63 - 1", 422, "invalid_request", "rows_trained",
-        setter("rows_trained", value=2**63)),
-    Bad("rows_trained as text", 422, "invalid_request", "rows_trained",
-        setter("rows_trained", value="5")),
+    Bad("key with a control character", 422, "invalid_request", "key", setter("key", value="a\nb")),
+    Bad(
+        "key longer than 200 characters",
+        422,
+        "invalid_request",
+        "key",
+        setter("key", value="k" * 201),
+    ),
+    Bad(
+        "text with a lone surrogate",
+        422,
+        "invalid_request",
+        "parent",
+        setter("parent", value="\ud800"),
+    ),
+    Bad(
+        "trained_until without a time zone",
+        422,
+        "invalid_request",
+        "trained_until",
+        setter("trained_until", value="2026-12-01T02:44:00"),
+    ),
+    Bad(
+        "trained_until not a time",
+        422,
+        "invalid_request",
+        "trained_until",
+        setter("trained_until", value="yesterday"),
+    ),
+    Bad(
+        "trained_until NaN",
+        422,
+        "invalid_request",
+        "trained_until",
+        setter("trained_until", value=NAN),
+    ),
+    Bad(
+        "rows_trained negative",
+        422,
+        "invalid_request",
+        "rows_trained",
+        setter("rows_trained", value=-1),
+    ),
+    Bad(
+        "rows_trained above 2^63 - 1",
+        422,
+        "invalid_request",
+        "rows_trained",
+        setter("rows_trained", value=2**63),
+    ),
+    Bad(
+        "rows_trained as text",
+        422,
+        "invalid_request",
+        "rows_trained",
+        setter("rows_trained", value="5"),
+    ),
     Bad("metric NaN", 422, "invalid_request", "metrics.auc", setter("metrics", "auc", value=NAN)),
-    Bad("metric Infinity", 422, "invalid_request", "metrics.auc",
-        setter("metrics", "auc", value=INF)),
-    Bad("metric as text", 422, "invalid_request", "metrics.auc",
-        setter("metrics", "auc", value="0.7")),
+    Bad(
+        "metric Infinity",
+        422,
+        "invalid_request",
+        "metrics.auc",
+        setter("metrics", "auc", value=INF),
+    ),
+    Bad(
+        "metric as text",
+        422,
+        "invalid_request",
+        "metrics.auc",
+        setter("metrics", "auc", value="0.7"),
+    ),
     Bad("metric true", 422, "invalid_request", "metrics.auc", setter("metrics", "auc", value=True)),
-    Bad("tag value with NUL", 422, "invalid_request", "tags.team",
-        setter("tags", value={"team": "a\x00b"})),
-    Bad("tag value not text", 422, "invalid_request", "tags.team",
-        setter("tags", value={"team": 3})),
-    Bad("code_version longer than 200 characters", 422, "invalid_request", "code_version",
-        setter("code_version", value="c" * 201)),
+    Bad(
+        "tag value with NUL",
+        422,
+        "invalid_request",
+        "tags.team",
+        setter("tags", value={"team": "a\x00b"}),
+    ),
+    Bad(
+        "tag value not text", 422, "invalid_request", "tags.team", setter("tags", value={"team": 3})
+    ),
+    Bad(
+        "code_version longer than 200 characters",
+        422,
+        "invalid_request",
+        "code_version",
+        setter("code_version", value="c" * 201),
+    ),
     # the sample
     Bad("score missing", 422, "invalid_request", "sample.score", remover("sample", "score")),
-    Bad("score not an array", 422, "invalid_request", "sample.score",
-        setter("sample", "score", value="0.5")),
-    Bad("score value as text", 422, "invalid_request", "sample.score[3]",
-        setter("sample", "score", 3, value="0.5")),
-    Bad("score value true", 422, "invalid_request", "sample.score[3]",
-        setter("sample", "score", 3, value=True)),
-    Bad("score value an array", 422, "invalid_request", "sample.score[3]",
-        setter("sample", "score", 3, value=[0.5])),
-    Bad("score integer beyond the float range", 422, "invalid_request", "sample.score[3]",
-        setter("sample", "score", 3, value=10**400)),
-    Bad("columns of different lengths", 422, "invalid_request", "sample.label",
-        setter("sample", "label", value=[0] * (ROWS - 1))),
-    Bad("duplicate row ids", 422, "duplicate_row_id", "sample.row_id[39]",
-        setter("sample", "row_id", value=[f"r{i}" for i in range(ROWS - 1)] + ["r7"])),
-    Bad("label NaN", 422, "invalid_request", "sample.label[2]",
-        setter("sample", "label", 2, value=NAN)),
-    Bad("label Infinity", 422, "invalid_request", "sample.label[2]",
-        setter("sample", "label", 2, value=INF)),
-    Bad("rank 0", 422, "invalid_request", "sample.rank[0]",
-        setter("sample", "rank", value=[0] * ROWS)),
-    Bad("rank 10^30", 422, "invalid_request", "sample.rank[0]",
-        setter("sample", "rank", value=[10**30] * ROWS)),
-    Bad("unknown sample column", 422, "invalid_request", "sample.colour",
-        setter("sample", "colour", value=["red"] * ROWS)),
-    Bad("segment column name with a space", 422, "invalid_request", "sample.segment.a b",
-        setter("sample", "segment.a b", value=["x"] * ROWS)),
-    Bad("segment column not an array", 422, "invalid_request", "sample.segment.device",
-        setter("sample", "segment.device", value="app")),
-    Bad("segment value a number with a fraction", 422, "invalid_request",
-        "sample.segment.device[0]", setter("sample", "segment.device", 0, value=1.5)),
-    Bad("segment value null", 422, "invalid_request", "sample.segment.device[0]",
-        setter("sample", "segment.device", 0, value=None)),
-    Bad("segment value with a lone surrogate", 422, "invalid_request",
-        "sample.segment.device[0]", setter("sample", "segment.device", 0, value="\udfff")),
-    Bad("segment value longer than 200 characters", 422, "invalid_request",
-        "sample.segment.device[0]", setter("sample", "segment.device", 0, value="w" * 201)),
-    Bad("more rows than TIDEGATE_MAX_ROWS", 422, "too_many_rows", "sample.score",
-        chain(setter("sample", "score", value=[0.5] * (MAX_ROWS + 1)),
-              setter("sample", "label", value=[0] * (MAX_ROWS + 1)),
-              setter("sample", "segment.device", value=["app"] * (MAX_ROWS + 1)))),
-    Bad("more columns than TIDEGATE_MAX_COLUMNS", 422, "too_many_columns", "sample",
-        lambda b: b["sample"].update({f"segment.s{i}": ["a"] * ROWS for i in range(MAX_COLUMNS)})),
+    Bad(
+        "score not an array",
+        422,
+        "invalid_request",
+        "sample.score",
+        setter("sample", "score", value="0.5"),
+    ),
+    Bad(
+        "score value as text",
+        422,
+        "invalid_request",
+        "sample.score[3]",
+        setter("sample", "score", 3, value="0.5"),
+    ),
+    Bad(
+        "score value true",
+        422,
+        "invalid_request",
+        "sample.score[3]",
+        setter("sample", "score", 3, value=True),
+    ),
+    Bad(
+        "score value an array",
+        422,
+        "invalid_request",
+        "sample.score[3]",
+        setter("sample", "score", 3, value=[0.5]),
+    ),
+    Bad(
+        "score integer beyond the float range",
+        422,
+        "invalid_request",
+        "sample.score[3]",
+        setter("sample", "score", 3, value=10**400),
+    ),
+    Bad(
+        "columns of different lengths",
+        422,
+        "invalid_request",
+        "sample.label",
+        setter("sample", "label", value=[0] * (ROWS - 1)),
+    ),
+    Bad(
+        "duplicate row ids",
+        422,
+        "duplicate_row_id",
+        "sample.row_id[39]",
+        setter("sample", "row_id", value=[f"r{i}" for i in range(ROWS - 1)] + ["r7"]),
+    ),
+    Bad(
+        "label NaN",
+        422,
+        "invalid_request",
+        "sample.label[2]",
+        setter("sample", "label", 2, value=NAN),
+    ),
+    Bad(
+        "label Infinity",
+        422,
+        "invalid_request",
+        "sample.label[2]",
+        setter("sample", "label", 2, value=INF),
+    ),
+    Bad(
+        "rank 0",
+        422,
+        "invalid_request",
+        "sample.rank[0]",
+        setter("sample", "rank", value=[0] * ROWS),
+    ),
+    Bad(
+        "rank 10^30",
+        422,
+        "invalid_request",
+        "sample.rank[0]",
+        setter("sample", "rank", value=[10**30] * ROWS),
+    ),
+    Bad(
+        "unknown sample column",
+        422,
+        "invalid_request",
+        "sample.colour",
+        setter("sample", "colour", value=["red"] * ROWS),
+    ),
+    Bad(
+        "segment column name with a space",
+        422,
+        "invalid_request",
+        "sample.segment.a b",
+        setter("sample", "segment.a b", value=["x"] * ROWS),
+    ),
+    Bad(
+        "segment column not an array",
+        422,
+        "invalid_request",
+        "sample.segment.device",
+        setter("sample", "segment.device", value="app"),
+    ),
+    Bad(
+        "segment value a number with a fraction",
+        422,
+        "invalid_request",
+        "sample.segment.device[0]",
+        setter("sample", "segment.device", 0, value=1.5),
+    ),
+    Bad(
+        "segment value null",
+        422,
+        "invalid_request",
+        "sample.segment.device[0]",
+        setter("sample", "segment.device", 0, value=None),
+    ),
+    Bad(
+        "segment value with a lone surrogate",
+        422,
+        "invalid_request",
+        "sample.segment.device[0]",
+        setter("sample", "segment.device", 0, value="\udfff"),
+    ),
+    Bad(
+        "segment value longer than 200 characters",
+        422,
+        "invalid_request",
+        "sample.segment.device[0]",
+        setter("sample", "segment.device", 0, value="w" * 201),
+    ),
+    Bad(
+        "more rows than TIDEGATE_MAX_ROWS",
+        422,
+        "too_many_rows",
+        "sample.score",
+        chain(
+            setter("sample", "score", value=[0.5] * (MAX_ROWS + 1)),
+            setter("sample", "label", value=[0] * (MAX_ROWS + 1)),
+            setter("sample", "segment.device", value=["app"] * (MAX_ROWS + 1)),
+        ),
+    ),
+    Bad(
+        "more columns than TIDEGATE_MAX_COLUMNS",
+        422,
+        "too_many_columns",
+        "sample",
+        lambda b: b["sample"].update({f"segment.s{i}": ["a"] * ROWS for i in range(MAX_COLUMNS)}),
+    ),
     # the path and the query
-    Bad("model name with a space", 422, "invalid_request", "model", None,
-        path="/v1/models/shelf%20ranker/snapshots"),
-    Bad("verdict id beyond 64 bits", 422, "invalid_request", "path.verdict_id",
-        path="/v1/verdicts/99999999999999999999999", method="GET"),
-    Bad("verdict id beyond 32 bits", 422, "invalid_request", "path.verdict_id",
-        path="/v1/verdicts/2147483648", method="GET"),
-    Bad("forged cursor", 422, "invalid_request", "query.cursor",
-        path="/v1/models/shelf-ranker/verdicts?cursor=bm90LW91cnM", method="GET"),
-    Bad("cursor beyond 32 bits", 422, "invalid_request", "query.cursor",
-        path="/v1/models/shelf-ranker/verdicts?cursor=djE6MjE0NzQ4MzY0OA", method="GET"),
-    Bad("since without a time zone", 422, "invalid_request", "query.since",
-        path="/v1/models/shelf-ranker/verdicts?since=2026-12-01T00:00:00", method="GET"),
-    Bad("limit 0", 422, "invalid_request", "query.limit",
-        path="/v1/models/shelf-ranker/verdicts?limit=0", method="GET"),
-    Bad("baseline reason empty", 422, "invalid_request", "reason", method="PUT",
-        raw=b'{"snapshot": "first", "reason": ""}', path="/v1/models/shelf-ranker/baseline"),
-    Bad("baseline reason with NUL", 422, "invalid_request", "reason", method="PUT",
+    Bad(
+        "model name with a space",
+        422,
+        "invalid_request",
+        "model",
+        None,
+        path="/v1/models/shelf%20ranker/snapshots",
+    ),
+    Bad(
+        "verdict id beyond 64 bits",
+        422,
+        "invalid_request",
+        "path.verdict_id",
+        path="/v1/verdicts/99999999999999999999999",
+        method="GET",
+    ),
+    Bad(
+        "verdict id beyond 32 bits",
+        422,
+        "invalid_request",
+        "path.verdict_id",
+        path="/v1/verdicts/2147483648",
+        method="GET",
+    ),
+    Bad(
+        "forged cursor",
+        422,
+        "invalid_request",
+        "query.cursor",
+        path="/v1/models/shelf-ranker/verdicts?cursor=bm90LW91cnM",
+        method="GET",
+    ),
+    Bad(
+        "cursor beyond 32 bits",
+        422,
+        "invalid_request",
+        "query.cursor",
+        path="/v1/models/shelf-ranker/verdicts?cursor=djE6MjE0NzQ4MzY0OA",
+        method="GET",
+    ),
+    Bad(
+        "since without a time zone",
+        422,
+        "invalid_request",
+        "query.since",
+        path="/v1/models/shelf-ranker/verdicts?since=2026-12-01T00:00:00",
+        method="GET",
+    ),
+    Bad(
+        "limit 0",
+        422,
+        "invalid_request",
+        "query.limit",
+        path="/v1/models/shelf-ranker/verdicts?limit=0",
+        method="GET",
+    ),
+    Bad(
+        "baseline reason empty",
+        422,
+        "invalid_request",
+        "reason",
+        method="PUT",
+        raw=b'{"snapshot": "first", "reason": ""}',
+        path="/v1/models/shelf-ranker/baseline",
+    ),
+    Bad(
+        "baseline reason with NUL",
+        422,
+        "invalid_request",
+        "reason",
+        method="PUT",
         raw=b'{"snapshot": "first", "reason": "a\\u0000"}',
-        path="/v1/models/shelf-ranker/baseline"),
+        path="/v1/models/shelf-ranker/baseline",
+    ),
 ]
 
 
@@ -240,8 +475,10 @@ def test_every_bad_input_gets_its_error_and_stores_nothing(limited: Api) -> None
         error = body.get("error") or {}
         got = (response.status_code, error.get("code"), error.get("field"))
         if got != (case.status, case.code, case.field):
-            wrong.append(f"{case.label}: expected {(case.status, case.code, case.field)}, "
-                         f"got {got}: {response.text[:200]}")
+            wrong.append(
+                f"{case.label}: expected {(case.status, case.code, case.field)}, "
+                f"got {got}: {response.text[:200]}"
+            )
         assert error.get("message"), case.label
         assert all("input" not in d for d in error.get("details", [])), case.label
     assert not wrong, "\n".join(wrong)
@@ -273,8 +510,8 @@ def test_scores_the_model_produced_are_judged_not_rejected(
     body = snapshot_body("odd", step=3, rows=ROWS)
     body["sample"]["score"][: len(score)] = score
     response = api.client.post(
-        "/v1/models/shelf-ranker/snapshots", headers={**api.headers(),
-                                                      "content-type": "application/json"},
+        "/v1/models/shelf-ranker/snapshots",
+        headers={**api.headers(), "content-type": "application/json"},
         content=json.dumps(body, allow_nan=True),
     )
     assert response.status_code == 201, response.text
@@ -297,8 +534,11 @@ def test_a_streamed_body_past_the_limit_is_refused(limited: Api) -> None:
             yield b"x" * 1024
         yield b'"}}'
 
-    response = api.client.post("/v1/models/shelf-ranker/snapshots", content=chunks(),
-                               headers={**api.headers(), "content-type": "application/json"})
+    response = api.client.post(
+        "/v1/models/shelf-ranker/snapshots",
+        content=chunks(),
+        headers={**api.headers(), "content-type": "application/json"},
+    )
     assert response.status_code == 413
     assert strict_json(response.text)["error"]["code"] == "payload_too_large"
     assert row_counts(api) == before
@@ -327,8 +567,12 @@ def test_the_body_limit_answers_before_reading_the_body() -> None:
         sent.append(message)
 
     limit = BodyLimit(app, limit=1024)
-    scope = {"type": "http", "method": "POST", "path": "/",
-             "headers": [(b"content-length", b"60000")]}
+    scope = {
+        "type": "http",
+        "method": "POST",
+        "path": "/",
+        "headers": [(b"content-length", b"60000")],
+    }
     asyncio.run(limit(scope, receive, capture))
     assert reads == 0 and sent[0]["status"] == 413
 

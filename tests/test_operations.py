@@ -30,8 +30,9 @@ def samples(text: str, name: str) -> dict[tuple[tuple[str, str], ...], float]:
 
 def test_metrics_count_verdicts_latency_and_errors(api: Api) -> None:
     assert api.post("shelf-ranker", snapshot_body("a", step=1)).json()["decision"] == "promote"
-    assert api.post("shelf-ranker", snapshot_body("b", step=2, shift=0.5)).json()["decision"] \
-        == "hold"
+    assert (
+        api.post("shelf-ranker", snapshot_body("b", step=2, shift=0.5)).json()["decision"] == "hold"
+    )
     assert api.post("shelf-ranker", snapshot_body("b", step=2, shift=0.5)).status_code == 200
     assert api.post("also-read", snapshot_body("x", step=1)).status_code == 201
     assert api.client.get("/v1/models/nope", headers=api.headers()).status_code == 404

@@ -13,8 +13,9 @@ def test_replay_counts_and_changes(make_harness) -> None:  # type: ignore[no-unt
     for i, shift in enumerate(shifts):
         h.clock.advance(minutes=15)
         h.post("m", body(f"s{i}", seed=i, shift=shift, minute=15 * (i + 1)))
-    stored = {v["snapshot"]: v["decision"]
-              for v in h.client.get("/v1/models/m/verdicts").json()["data"]}
+    stored = {
+        v["snapshot"]: v["decision"] for v in h.client.get("/v1/models/m/verdicts").json()["data"]
+    }
     database = h.client.app.state.database  # type: ignore[attr-defined]
     same = parse_policy(POLICY, name="same")
     with database.transaction() as session:

@@ -41,8 +41,14 @@ def history(make_api: Any, monkeypatch: pytest.MonkeyPatch) -> Api:
         assert h2 is not None
         verdict = repo.verdict_for_snapshot(session, snapshot_id=h2.id)
         assert verdict is not None
-        repo.add_override(session, verdict_id=verdict.id, decision="hold", reason="confirmed",
-                          actor="dana", now=OLD + timedelta(hours=3))
+        repo.add_override(
+            session,
+            verdict_id=verdict.id,
+            decision="hold",
+            reason="confirmed",
+            actor="dana",
+            now=OLD + timedelta(hours=3),
+        )
     engine.dispose()
     return api
 

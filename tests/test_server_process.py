@@ -65,9 +65,9 @@ def burst_bodies() -> list[list[tuple[str, dict[str, Any]]]]:
     return out
 
 
-def run_burst(server: Server, token: str, kill_after: int
-              ) -> tuple[dict[tuple[str, str], dict[str, Any]], list[tuple[str, dict[str, Any]]],
-                         int]:
+def run_burst(
+    server: Server, token: str, kill_after: int
+) -> tuple[dict[tuple[str, str], dict[str, Any]], list[tuple[str, dict[str, Any]]], int]:
     """Post from CLIENTS threads; SIGKILL the server after *kill_after* acknowledgements.
     Returns the acknowledged verdicts, the posts that got no acknowledgement, and how many
     posts were in flight (sent, not answered) when the signal went."""
@@ -78,8 +78,9 @@ def run_burst(server: Server, token: str, kill_after: int
     in_flight = {"now": 0, "at_kill": 0}
 
     def client(posts: list[tuple[str, dict[str, Any]]]) -> None:
-        with httpx.Client(base_url=server.url, timeout=30.0,
-                          headers={"Authorization": f"Bearer {token}"}) as http:
+        with httpx.Client(
+            base_url=server.url, timeout=30.0, headers={"Authorization": f"Bearer {token}"}
+        ) as http:
             for n, (model, body) in enumerate(posts):
                 if killed.is_set():
                     with lock:
@@ -128,8 +129,9 @@ def test_sigkill_mid_burst_loses_no_acknowledged_post(
             found += 1
         committed_unacked = sum(1 for model, body in unacked if (model, body["key"]) in before.keys)
         retried = {201: 0, 200: 0}
-        with httpx.Client(base_url=server.url, timeout=30.0,
-                          headers={"Authorization": f"Bearer {trainer}"}) as http:
+        with httpx.Client(
+            base_url=server.url, timeout=30.0, headers={"Authorization": f"Bearer {trainer}"}
+        ) as http:
             for model, body in unacked:
                 response = http.post(f"/v1/models/{model}/snapshots", json=body)
                 assert response.status_code in (200, 201), response.text
@@ -140,17 +142,19 @@ def test_sigkill_mid_burst_loses_no_acknowledged_post(
         server.kill()
         after = check_store(database_url)
         assert {(m, b["key"]) for posts in burst_bodies() for m, b in posts} <= after.keys
-        runs.append({
-            "kill_after_acks": kill_after,
-            "posts": CLIENTS * POSTS_PER_CLIENT,
-            "in_flight_at_kill": in_flight,
-            "acknowledged": len(acked),
-            "acknowledged_found_after_restart": found,
-            "unacknowledged": len(unacked),
-            "unacknowledged_but_committed": committed_unacked,
-            "retried_201": retried[201],
-            "retried_200": retried[200],
-        })
+        runs.append(
+            {
+                "kill_after_acks": kill_after,
+                "posts": CLIENTS * POSTS_PER_CLIENT,
+                "in_flight_at_kill": in_flight,
+                "acknowledged": len(acked),
+                "acknowledged_found_after_restart": found,
+                "unacknowledged": len(unacked),
+                "unacknowledged_but_committed": committed_unacked,
+                "retried_201": retried[201],
+                "retried_200": retried[200],
+            }
+        )
         # the next run starts over on fresh keys: drop what this one stored
         clear(database_url)
     record(f"crash-{backend(database_url)}", {"runs": runs})
@@ -166,8 +170,16 @@ def clear(url: str) -> None:
     engine = store_db.make_engine(Settings(database_url=url))
     with engine.begin() as conn:
         conn.execute(text("UPDATE models SET baseline_id = NULL, reference_id = NULL"))
-        for table in ("promotions", "overrides", "verdicts", "sample_columns", "snapshots",
-                      "policies", "audit_log", "models"):
+        for table in (
+            "promotions",
+            "overrides",
+            "verdicts",
+            "sample_columns",
+            "snapshots",
+            "policies",
+            "audit_log",
+            "models",
+        ):
             conn.execute(text(f"DELETE FROM {table}"))
     engine.dispose()
 
@@ -208,11 +220,14 @@ def test_logs_are_json_with_storage_settings_and_request_ids(
     database_url: str, trainer: str, tmp_path: Path
 ) -> None:
     with Server(database_url, tmp_path) as server:
-        response = httpx.get(f"{server.url}/v1/models", headers={
-            "Authorization": f"Bearer {trainer}", "X-Request-ID": "trace-42"})
+        response = httpx.get(
+            f"{server.url}/v1/models",
+            headers={"Authorization": f"Bearer {trainer}", "X-Request-ID": "trace-42"},
+        )
         assert response.headers["x-request-id"] == "trace-42"
-        generated = httpx.get(f"{server.url}/v1/models",
-                              headers={"Authorization": f"Bearer {trainer}"})
+        generated = httpx.get(
+            f"{server.url}/v1/models", headers={"Authorization": f"Bearer {trainer}"}
+        )
         assert len(generated.headers["x-request-id"]) == 32
         refused = httpx.get(f"{server.url}/v1/models")
         assert refused.status_code == 401 and refused.headers["x-request-id"]
@@ -242,8 +257,9 @@ def test_several_workers_keep_one_chain_of_baselines(
 ) -> None:
     from tests.test_concurrency import concurrent_posts
 
-    with httpx.Client(base_url=workers_server.url, timeout=60.0,
-                      headers={"Authorization": f"Bearer {trainer}"}) as http:
+    with httpx.Client(
+        base_url=workers_server.url, timeout=60.0, headers={"Authorization": f"Bearer {trainer}"}
+    ) as http:
 
         def post(model: str, body: dict[str, Any]) -> Any:
             return http.post(f"/v1/models/{model}/snapshots", json=body)
@@ -253,9 +269,17 @@ def test_several_workers_keep_one_chain_of_baselines(
     assert set(statuses) <= {200, 201}, results
     state = check_store(database_url, columns_per_sample=3)
     promoted = sum(1 for _, d in state.verdict_of.values() if d == "promote")
-    record(f"workers-{backend(database_url)}", {
-        "workers": 3, "client_threads": 6, "posts": len(results),
-        "created": statuses.count(201), "retries_answered_200": statuses.count(200),
-        "stored": state.snapshots, "promotions": state.promotions, "promoted": promoted,
-    })
+    record(
+        f"workers-{backend(database_url)}",
+        {
+            "workers": 3,
+            "client_threads": 6,
+            "posts": len(results),
+            "created": statuses.count(201),
+            "retries_answered_200": statuses.count(200),
+            "stored": state.snapshots,
+            "promotions": state.promotions,
+            "promoted": promoted,
+        },
+    )
     assert state.snapshots == 36 and state.promotions == promoted >= 1

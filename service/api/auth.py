@@ -140,21 +140,25 @@ class TokenGate:
         try:
             principal = await anyio.to_thread.run_sync(
                 lambda: authenticate(
-                    settings=self.settings, database=self.database,
-                    authorization=authorization, actor=None,
+                    settings=self.settings,
+                    database=self.database,
+                    authorization=authorization,
+                    actor=None,
                 )
             )
         except Unauthorized as exc:
             body = json.dumps(exc.body()).encode("utf-8")
-            await send({
-                "type": "http.response.start",
-                "status": 401,
-                "headers": [
-                    (b"content-type", b"application/json"),
-                    (b"content-length", str(len(body)).encode()),
-                    (b"www-authenticate", b'Bearer realm="tidegate"'),
-                ],
-            })
+            await send(
+                {
+                    "type": "http.response.start",
+                    "status": 401,
+                    "headers": [
+                        (b"content-type", b"application/json"),
+                        (b"content-length", str(len(body)).encode()),
+                        (b"www-authenticate", b'Bearer realm="tidegate"'),
+                    ],
+                }
+            )
             await send({"type": "http.response.body", "body": body})
             return
         scope.setdefault("state", {})[STATE_KEY] = principal

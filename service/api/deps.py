@@ -180,8 +180,7 @@ def app_routes(app: Any) -> list[RouteInfo]:
             continue
         methods = frozenset(getattr(route, "methods", None) or ())
         if isinstance(original, APIRoute):
-            out.append(RouteInfo(path, methods, tuple(access_of(route.dependant)),
-                                 route.dependant))
+            out.append(RouteInfo(path, methods, tuple(access_of(route.dependant)), route.dependant))
         else:
             out.append(RouteInfo(path, methods, None))
     return out

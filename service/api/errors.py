@@ -49,12 +49,18 @@ def field_path(loc: Sequence[Any]) -> str:
     return out
 
 
-def error_response(status: int, code: str, message: str, field: str | None = None,
-                   details: list[dict[str, Any]] | None = None) -> JSONResponse:
+def error_response(
+    status: int,
+    code: str,
+    message: str,
+    field: str | None = None,
+    details: list[dict[str, Any]] | None = None,
+) -> JSONResponse:
     return JSONResponse(
         status_code=status,
-        content={"error": {"code": code, "message": message, "field": field,
-                           "details": details or []}},
+        content={
+            "error": {"code": code, "message": message, "field": field, "details": details or []}
+        },
     )
 
 
@@ -71,7 +77,8 @@ async def _storage_error(_request: Request, exc: Exception) -> JSONResponse:
     rolled back, so nothing of the request was stored and a retry is safe."""
     log.error("storage error: %s", exc, exc_info=exc)
     response = error_response(
-        503, "storage_unavailable",
+        503,
+        "storage_unavailable",
         "the database did not complete the request; nothing was stored, retry later",
     )
     response.headers["Retry-After"] = "1"
@@ -90,8 +97,11 @@ def _not_json(request: Request, exc: RequestValidationError) -> bool:
 async def _validation_error(request: Request, exc: Exception) -> JSONResponse:
     assert isinstance(exc, RequestValidationError)
     if _not_json(request, exc):
-        return error_response(415, "unsupported_media_type",
-                              "send the body as JSON with Content-Type: application/json")
+        return error_response(
+            415,
+            "unsupported_media_type",
+            "send the body as JSON with Content-Type: application/json",
+        )
     details = []
     for err in exc.errors()[:50]:
         kind = str(err.get("type", ""))
@@ -101,22 +111,28 @@ async def _validation_error(request: Request, exc: Exception) -> JSONResponse:
         loc = err.get("loc", ())
         if kind == "json_invalid":
             where = loc[-1] if loc and isinstance(loc[-1], int) else None
-            message = "body is not valid JSON" + (f" at character {where}" if where else "") + \
-                ": " + str(err.get("ctx", {}).get("error", ""))
+            message = (
+                "body is not valid JSON"
+                + (f" at character {where}" if where else "")
+                + ": "
+                + str(err.get("ctx", {}).get("error", ""))
+            )
             loc = ()
         details.append({"field": field_path(loc) or None, "message": message, "type": kind})
     first = details[0] if details else {"field": None, "message": "invalid request"}
     code = "invalid_json" if first.get("type") == "json_invalid" else "invalid_request"
-    return error_response(422, code, f"{first['field'] or 'request'}: {first['message']}",
-                          first["field"], details)
+    return error_response(
+        422, code, f"{first['field'] or 'request'}: {first['message']}", first["field"], details
+    )
 
 
 async def _http_error(_request: Request, exc: Exception) -> JSONResponse:
     assert isinstance(exc, StarletteHTTPException)
     if exc.status_code == 400 and isinstance(exc.__cause__, (ValueError, RecursionError)):
         # the body could not be decoded (not UTF-8) or parsed (nested too deep)
-        return error_response(422, "invalid_json", "body is not valid JSON: "
-                              f"{type(exc.__cause__).__name__}")
+        return error_response(
+            422, "invalid_json", f"body is not valid JSON: {type(exc.__cause__).__name__}"
+        )
     code = _HTTP_CODES.get(exc.status_code, "http_error")
     response = error_response(exc.status_code, code, str(exc.detail))
     if exc.headers:

@@ -31,18 +31,25 @@ def _error_body(status: int, code: str, message: str) -> bytes:
     ).encode("utf-8")
 
 
-async def send_error(send: Send, status: int, code: str, message: str,
-                     headers: list[tuple[bytes, bytes]] | None = None) -> None:
+async def send_error(
+    send: Send,
+    status: int,
+    code: str,
+    message: str,
+    headers: list[tuple[bytes, bytes]] | None = None,
+) -> None:
     body = _error_body(status, code, message)
-    await send({
-        "type": "http.response.start",
-        "status": status,
-        "headers": [
-            (b"content-type", b"application/json"),
-            (b"content-length", str(len(body)).encode()),
-            *(headers or []),
-        ],
-    })
+    await send(
+        {
+            "type": "http.response.start",
+            "status": status,
+            "headers": [
+                (b"content-type", b"application/json"),
+                (b"content-length", str(len(body)).encode()),
+                *(headers or []),
+            ],
+        }
+    )
     await send({"type": "http.response.body", "body": body})
 
 
@@ -77,12 +84,16 @@ class RequestContext:
             if message["type"] == "http.response.start":
                 state["started"] = True
                 state["status"] = int(message["status"])
-                headers = [(k, v) for k, v in message.get("headers", [])
-                           if k.lower() != b"x-request-id"]
+                headers = [
+                    (k, v) for k, v in message.get("headers", []) if k.lower() != b"x-request-id"
+                ]
                 headers.append((b"x-request-id", rid.encode("latin-1")))
                 message = {**message, "headers": headers}
-            elif (message["type"] == "http.response.body" and state["status"] >= 400
-                  and state["code"] is None):
+            elif (
+                message["type"] == "http.response.body"
+                and state["status"] >= 400
+                and state["code"] is None
+            ):
                 state["code"] = _error_code(message.get("body", b""))
             await send(message)
 
@@ -97,14 +108,25 @@ class RequestContext:
             seconds = time.perf_counter() - started
             route = _route_template(scope)
             principal = scope.get("state", {}).get("principal")
-            self.metrics.request(method=scope.get("method", ""), route=route,
-                                 status=state["status"], code=state["code"], seconds=seconds)
+            self.metrics.request(
+                method=scope.get("method", ""),
+                route=route,
+                status=state["status"],
+                code=state["code"],
+                seconds=seconds,
+            )
             log.info(
-                "%s %s %s", scope.get("method"), scope.get("path"), state["status"],
+                "%s %s %s",
+                scope.get("method"),
+                scope.get("path"),
+                state["status"],
                 extra=logs.fields(
-                    request_id=rid, method=scope.get("method"), path=scope.get("path"),
+                    request_id=rid,
+                    method=scope.get("method"),
+                    path=scope.get("path"),
                     route=route,
-                    status=state["status"], error=state["code"],
+                    status=state["status"],
+                    error=state["code"],
                     duration_ms=round(seconds * 1000.0, 3),
                     actor=getattr(principal, "name", None),
                 ),
@@ -147,9 +169,13 @@ class BodyLimit:
                     await send_error(send, 400, "bad_request", "Content-Length is not a number")
                     return
                 if int(text) > self.limit:
-                    await send_error(send, 413, "payload_too_large",
-                                     f"request body larger than {self.limit} bytes",
-                                     [(b"connection", b"close")])
+                    await send_error(
+                        send,
+                        413,
+                        "payload_too_large",
+                        f"request body larger than {self.limit} bytes",
+                        [(b"connection", b"close")],
+                    )
                     return
         seen = 0
         started = False
@@ -174,6 +200,10 @@ class BodyLimit:
         except BodyTooLarge:
             if started:
                 raise
-            await send_error(send, 413, "payload_too_large",
-                             f"request body larger than {self.limit} bytes",
-                             [(b"connection", b"close")])
+            await send_error(
+                send,
+                413,
+                "payload_too_large",
+                f"request body larger than {self.limit} bytes",
+                [(b"connection", b"close")],
+            )

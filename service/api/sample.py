@@ -35,8 +35,10 @@ def _is_unicode(text: str) -> bool:
 def _texts(name: str, values: list[Any], limit: int) -> np.ndarray:
     out = np.empty(len(values), dtype=object)
     for i, value in enumerate(values):
-        if isinstance(value, bool) or not isinstance(value, (str, int)) or (
-            isinstance(value, int) and abs(value) > 10**100
+        if (
+            isinstance(value, bool)
+            or not isinstance(value, (str, int))
+            or (isinstance(value, int) and abs(value) > 10**100)
         ):
             raise InvalidInput(
                 f"{name} values must be text or integers", field=f"sample.{name}[{i}]"

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-from datetime import datetime
 from typing import Annotated, Any, Literal
 
 from pydantic import AwareDatetime, BaseModel, ConfigDict, Field, Strict, StringConstraints
@@ -16,8 +15,10 @@ Key = Annotated[
 ShortText = Annotated[str, StringConstraints(max_length=200, pattern=r"^[^\x00-\x1f\x7f]*$")]
 #: Free text (reasons): line breaks and tabs allowed, other control characters not.
 FreeText = Annotated[
-    str, StringConstraints(min_length=1, max_length=2000,
-                           pattern=r"^[^\x00-\x08\x0b\x0c\x0e-\x1f\x7f]*$")
+    str,
+    StringConstraints(
+        min_length=1, max_length=2000, pattern=r"^[^\x00-\x08\x0b\x0c\x0e-\x1f\x7f]*$"
+    ),
 ]
 Number = Annotated[float, Strict()]
 FiniteFloat = Annotated[float, Strict(), Field(allow_inf_nan=False)]
@@ -187,9 +188,7 @@ class BaselineSet(BaseModel):
     model_config = ConfigDict(extra="forbid")
 
     snapshot: Key = Field(description="Key of the snapshot to serve.")
-    reason: FreeText = Field(
-        description="Why (kept in the audit log)."
-    )
+    reason: FreeText = Field(description="Why (kept in the audit log).")
 
 
 class BaselinePublic(BaseModel):
@@ -207,9 +206,7 @@ class ReferenceSet(BaseModel):
     snapshot: Key | None = Field(
         description="Key of the snapshot to pin; null unpins (the policy's lag applies again)."
     )
-    reason: FreeText = Field(
-        description="Why (kept in the audit log)."
-    )
+    reason: FreeText = Field(description="Why (kept in the audit log).")
 
 
 class ReferencePublic(BaseModel):
@@ -248,11 +245,15 @@ class OverrideCreate(BaseModel):
     model_config = ConfigDict(extra="forbid")
 
     decision: Literal["promote", "hold"] = Field(description="The decision to put in force.")
-    reason: Annotated[str, StringConstraints(strip_whitespace=True, min_length=1,
-                                             max_length=2000,
-                                             pattern=r"^[^\x00-\x08\x0b\x0c\x0e-\x1f\x7f]*$")] = Field(
-        description="Why (required; kept with the override and in the audit log)."
-    )
+    reason: Annotated[
+        str,
+        StringConstraints(
+            strip_whitespace=True,
+            min_length=1,
+            max_length=2000,
+            pattern=r"^[^\x00-\x08\x0b\x0c\x0e-\x1f\x7f]*$",
+        ),
+    ] = Field(description="Why (required; kept with the override and in the audit log).")
 
 
 class OverrideResult(BaseModel):

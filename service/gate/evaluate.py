@@ -170,7 +170,9 @@ def evaluate(inp: GateInput, policy: Policy | None) -> Verdict:
     )
 
 
-def failed_verdict(error: BaseException, *, policy: Policy | None, baseline_key: str | None) -> Verdict:
+def failed_verdict(
+    error: BaseException, *, policy: Policy | None, baseline_key: str | None
+) -> Verdict:
     """The verdict when evaluation itself raised: hold, with the error as its reason."""
     message = f"evaluation failed: {type(error).__name__}: {error}"
     return Verdict(

@@ -29,7 +29,9 @@ from service.gate.checks import REGISTRY, CheckConfig
 class PolicyError(ValueError):
     """A policy file that cannot be used; the message names file, check and key."""
 
-    def __init__(self, message: str, *, file: str, check: str | None = None, key: str | None = None):
+    def __init__(
+        self, message: str, *, file: str, check: str | None = None, key: str | None = None
+    ):
         self.file = file
         self.check = check
         self.key = key

@@ -71,8 +71,9 @@ def summarise(score: np.ndarray) -> SampleSummary:
     """Count, moments, 101 quantiles and a 40-bin histogram of the finite scores."""
     finite = score[np.isfinite(score)]
     if finite.size == 0:
-        return SampleSummary(count=int(score.size), finite=0, mean=None, std=None, minimum=None,
-                             maximum=None)
+        return SampleSummary(
+            count=int(score.size), finite=0, mean=None, std=None, minimum=None, maximum=None
+        )
     lo, hi = float(finite.min()), float(finite.max())
     with np.errstate(over="ignore", invalid="ignore"):
         mean, std = float(finite.mean()), float(finite.std())

@@ -134,7 +134,10 @@ def add_snapshot(
 def load_sample(session: Session, *, snapshot_id: int) -> Sample | None:
     rows = session.execute(
         select(
-            SampleColumnRow.name, SampleColumnRow.codec, SampleColumnRow.length, SampleColumnRow.data
+            SampleColumnRow.name,
+            SampleColumnRow.codec,
+            SampleColumnRow.length,
+            SampleColumnRow.data,
         ).where(SampleColumnRow.snapshot_id == snapshot_id)
     ).all()
     if not rows:
@@ -167,9 +170,7 @@ def known_keys(session: Session, *, model_id: int) -> frozenset[str]:
     )
 
 
-def list_snapshots(
-    session: Session, *, model_id: int, limit: int = 100
-) -> Sequence[SnapshotRow]:
+def list_snapshots(session: Session, *, model_id: int, limit: int = 100) -> Sequence[SnapshotRow]:
     return session.scalars(
         select(SnapshotRow)
         .where(SnapshotRow.model_id == model_id)
@@ -195,8 +196,9 @@ def record_policy(session: Session, *, policy: Policy, now: datetime) -> None:
         return
     exists = session.scalars(select(PolicyRow.id).where(PolicyRow.digest == policy.digest)).first()
     if exists is None:  # pragma: no cover - other dialects
-        session.add(PolicyRow(name=policy.name, digest=policy.digest, text=policy.text,
-                              first_seen_at=now))
+        session.add(
+            PolicyRow(name=policy.name, digest=policy.digest, text=policy.text, first_seen_at=now)
+        )
         session.flush()
 
 
@@ -262,8 +264,9 @@ def overrides_for(session: Session, *, verdict_ids: Sequence[int]) -> dict[int, 
 def add_override(
     session: Session, *, verdict_id: int, decision: str, reason: str, actor: str, now: datetime
 ) -> OverrideRow:
-    row = OverrideRow(verdict_id=verdict_id, decision=decision, reason=reason, actor=actor,
-                      created_at=now)
+    row = OverrideRow(
+        verdict_id=verdict_id, decision=decision, reason=reason, actor=actor, created_at=now
+    )
     session.add(row)
     session.flush()
     return row
@@ -318,7 +321,9 @@ def list_verdicts(
         stmt = stmt.where(VerdictRow.created_at < until)
     if before_id is not None:
         stmt = stmt.where(VerdictRow.id < before_id)
-    rows = [(v, s) for v, s in session.execute(stmt.order_by(VerdictRow.id.desc()).limit(limit + 1))]
+    rows = [
+        (v, s) for v, s in session.execute(stmt.order_by(VerdictRow.id.desc()).limit(limit + 1))
+    ]
     more = len(rows) > limit
     rows = rows[:limit]
     return rows, (rows[-1][0].id if more and rows else None)
@@ -467,9 +472,7 @@ def history(
             if isinstance(f, dict) and f.get("value") is not None
         }
         healthy = (
-            effective == "promote"
-            and snap.id in state.ever
-            and snap.id not in state.rolled_back
+            effective == "promote" and snap.id in state.ever and snap.id not in state.rolled_back
         )
         entries.append(
             HistoryEntry(
@@ -501,8 +504,16 @@ def add_audit(
     reason: str,
     now: datetime,
 ) -> AuditRow:
-    row = AuditRow(at=now, actor=actor, action=action, model=model, target=target, before=before,
-                   after=after, reason=reason)
+    row = AuditRow(
+        at=now,
+        actor=actor,
+        action=action,
+        model=model,
+        target=target,
+        before=before,
+        after=after,
+        reason=reason,
+    )
     session.add(row)
     session.flush()
     return row

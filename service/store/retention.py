@@ -69,8 +69,9 @@ def unresolved_holds(session: Session) -> set[int]:
     """Snapshot ids held by the gate with no override since and no promotion of the model
     after the verdict."""
     held = session.execute(
-        select(VerdictRow.id, VerdictRow.snapshot_id, VerdictRow.model_id, VerdictRow.created_at)
-        .where(VerdictRow.decision == "hold")
+        select(
+            VerdictRow.id, VerdictRow.snapshot_id, VerdictRow.model_id, VerdictRow.created_at
+        ).where(VerdictRow.decision == "hold")
     ).all()
     if not held:
         return set()
@@ -102,11 +103,13 @@ def plan_prune(session: Session, *, cutoff: datetime) -> PrunePlan:
     references = {r for (r,) in session.execute(select(ModelRow.reference_id)) if r is not None}
     held = unresolved_holds(session)
     old = session.scalars(
-        select(SnapshotRow.id).where(
+        select(SnapshotRow.id)
+        .where(
             SnapshotRow.created_at < cutoff,
             SnapshotRow.sample_pruned_at.is_(None),
             SnapshotRow.id.in_(select(SampleColumnRow.snapshot_id)),
-        ).order_by(SnapshotRow.id)
+        )
+        .order_by(SnapshotRow.id)
     ).all()
     for snapshot_id in old:
         if snapshot_id in baselines:
@@ -119,8 +122,9 @@ def plan_prune(session: Session, *, cutoff: datetime) -> PrunePlan:
             plan.prune_ids.append(snapshot_id)
     for chunk in _chunks(plan.prune_ids):
         count, size = session.execute(
-            select(func.count(SampleColumnRow.id), func.sum(func.length(SampleColumnRow.data)))
-            .where(SampleColumnRow.snapshot_id.in_(chunk))
+            select(
+                func.count(SampleColumnRow.id), func.sum(func.length(SampleColumnRow.data))
+            ).where(SampleColumnRow.snapshot_id.in_(chunk))
         ).one()
         plan.columns += int(count or 0)
         plan.bytes += int(size or 0)

@@ -51,17 +51,23 @@ def get_web_principal(request: Request) -> Principal:
         principal = open_principal(request.headers.get("x-actor"))
     elif request.headers.get("authorization"):
         try:
-            principal = authenticate(settings=settings, database=database,
-                                     authorization=request.headers.get("authorization"),
-                                     actor=None)
+            principal = authenticate(
+                settings=settings,
+                database=database,
+                authorization=request.headers.get("authorization"),
+                actor=None,
+            )
         except Unauthorized as exc:
             raise SignInNeeded(exc.message) from None
     else:
         secret = request.cookies.get(SESSION_COOKIE)
         found = lookup(database, secret, now=datetime.now(UTC)) if secret else None
         if found is None:
-            raise SignInNeeded("sign in with an API token" if not secret else
-                               "your session has ended (the token was revoked?): sign in again")
+            raise SignInNeeded(
+                "sign in with an API token"
+                if not secret
+                else "your session has ended (the token was revoked?): sign in again"
+            )
         principal = found
     setattr(request.state, STATE_KEY, principal)
     return principal
@@ -98,8 +104,9 @@ async def page_error(request: Request, exc: Exception) -> Response:
         return RedirectResponse(f"/ui/sign-in?next={quote(target, safe='')}", status_code=303)
     from service.web import routes
 
-    principal = getattr(request.state, STATE_KEY, None) or Principal(name="not signed in",
-                                                                     role="none", models=())
+    principal = getattr(request.state, STATE_KEY, None) or Principal(
+        name="not signed in", role="none", models=()
+    )
     return routes.error_page(request, exc, principal, request.app.state.clock())
 
 
@@ -109,13 +116,20 @@ def install(app: Any) -> None:
     app.add_exception_handler(PageForbidden, page_error)
 
 
-def _sign_in_page(request: Request, *, next_url: str, error: str | None = None,
-                  status: int = 200) -> Response:
+def _sign_in_page(
+    request: Request, *, next_url: str, error: str | None = None, status: int = 200
+) -> Response:
     from service.web import routes
 
     principal = Principal(name="not signed in", role="none", models=())
-    return routes.render(request, "sign_in.html", {"next_url": next_url, "error": error},
-                         principal, request.app.state.clock(), status)
+    return routes.render(
+        request,
+        "sign_in.html",
+        {"next_url": next_url, "error": error},
+        principal,
+        request.app.state.clock(),
+        status,
+    )
 
 
 @router.get("/sign-in", response_class=HTMLResponse)
@@ -139,22 +153,33 @@ def sign_in(
         csrf.verify(request, csrf_token)
     except Forbidden as exc:
         return _sign_in_page(request, next_url=target, error=exc.message, status=403)
-    principal = lookup(request.app.state.database, token.strip(), now=datetime.now(UTC)) \
-        if token.strip() else None
+    principal = (
+        lookup(request.app.state.database, token.strip(), now=datetime.now(UTC))
+        if token.strip()
+        else None
+    )
     if principal is None:
-        return _sign_in_page(request, next_url=target, status=401,
-                             error="that token is not valid (unknown or revoked)")
+        return _sign_in_page(
+            request,
+            next_url=target,
+            status=401,
+            error="that token is not valid (unknown or revoked)",
+        )
     response = RedirectResponse(target, status_code=303)
-    response.set_cookie(SESSION_COOKIE, token.strip(), max_age=SESSION_HOURS * 3600,
-                        httponly=True, samesite="strict", secure=request.url.scheme == "https",
-                        path="/ui")
+    response.set_cookie(
+        SESSION_COOKIE,
+        token.strip(),
+        max_age=SESSION_HOURS * 3600,
+        httponly=True,
+        samesite="strict",
+        secure=request.url.scheme == "https",
+        path="/ui",
+    )
     return response
 
 
 @router.post("/sign-out")
-def sign_out(
-    request: Request, csrf_token: Annotated[str, Form(max_length=200)] = ""
-) -> Response:
+def sign_out(request: Request, csrf_token: Annotated[str, Form(max_length=200)] = "") -> Response:
     from service.web import csrf
 
     try:

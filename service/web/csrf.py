@@ -60,8 +60,14 @@ def attach(request: Request, response: Response) -> Response:
     """Set the double-submit cookie on *response* when :func:`token_for` made a new one."""
     value = getattr(request.state, _STATE, None)
     if value:
-        response.set_cookie(FORM_COOKIE, value, httponly=True, samesite="strict",
-                            secure=request.url.scheme == "https", path="/ui")
+        response.set_cookie(
+            FORM_COOKIE,
+            value,
+            httponly=True,
+            samesite="strict",
+            secure=request.url.scheme == "https",
+            path="/ui",
+        )
     return response
 
 

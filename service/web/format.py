@@ -130,6 +130,9 @@ def state_text(state: dict[str, object] | None) -> str:
     baseline 2026-12-01T02:30Z``."""
     if not state:
         return DASH
-    parts = [f"{k} {state[k] if state[k] is not None else 'none'}"
-             for k in ("decision", "baseline", "reference") if k in state]
+    parts = [
+        f"{k} {state[k] if state[k] is not None else 'none'}"
+        for k in ("decision", "baseline", "reference")
+        if k in state
+    ]
     return ", ".join(parts) or DASH

@@ -40,8 +40,16 @@ from service.web.auth import SESSION_COOKIE
 from service.web.deps import WebOperatorDep, WebReaderDep
 
 TEMPLATES = Jinja2Templates(directory=str(Path(__file__).parent / "templates"))
-for _name in ("utc_text", "num", "signed", "pct", "pvalue", "milliseconds", "duration_text",
-              "state_text"):
+for _name in (
+    "utc_text",
+    "num",
+    "signed",
+    "pct",
+    "pvalue",
+    "milliseconds",
+    "duration_text",
+    "state_text",
+):
     TEMPLATES.env.filters[_name] = getattr(format, _name)
 TEMPLATES.env.filters["thousands"] = format.count
 TEMPLATES.env.globals.update(model_url=format.model_url, snapshot_url=format.snapshot_url)
@@ -59,8 +67,14 @@ def home() -> RedirectResponse:
     return RedirectResponse("/ui/", status_code=307)
 
 
-def render(request: Request, template: str, context: Mapping[str, Any], principal: Principal,
-           now: datetime, status: int = 200) -> HTMLResponse:
+def render(
+    request: Request,
+    template: str,
+    context: Mapping[str, Any],
+    principal: Principal,
+    now: datetime,
+    status: int = 200,
+) -> HTMLResponse:
     full = {
         "principal": principal,
         "signed_in": bool(request.cookies.get(SESSION_COOKIE)),
@@ -74,8 +88,9 @@ def render(request: Request, template: str, context: Mapping[str, Any], principa
     return csrf.attach(request, response)  # type: ignore[return-value]
 
 
-def error_page(request: Request, exc: TidegateError, principal: Principal, now: datetime
-               ) -> HTMLResponse:
+def error_page(
+    request: Request, exc: TidegateError, principal: Principal, now: datetime
+) -> HTMLResponse:
     return render(request, "error.html", {"error": exc}, principal, now, exc.status)
 
 
@@ -92,8 +107,9 @@ def _model(session: Session, name: str) -> ModelRow:
     return row
 
 
-def strip_items(model: str, rows: list[tuple[VerdictRow, SnapshotRow]],
-                overrides: Mapping[int, list[Any]]) -> list[svg.StripItem]:
+def strip_items(
+    model: str, rows: list[tuple[VerdictRow, SnapshotRow]], overrides: Mapping[int, list[Any]]
+) -> list[svg.StripItem]:
     """Decision strip items, oldest first, from verdict rows newest first."""
     items = []
     for verdict, snap in reversed(rows):
@@ -103,8 +119,11 @@ def strip_items(model: str, rows: list[tuple[VerdictRow, SnapshotRow]],
             title += f" (gate said {verdict.decision}; overridden)"
         if verdict.reasons:
             title += f": {verdict.reasons[0]}"
-        items.append(svg.StripItem(effective, bool(overrides[verdict.id]),
-                                   format.snapshot_url(model, snap.key), title))
+        items.append(
+            svg.StripItem(
+                effective, bool(overrides[verdict.id]), format.snapshot_url(model, snap.key), title
+            )
+        )
     return items
 
 
@@ -115,8 +134,7 @@ def stuck_first(view: Mapping[str, Any]) -> tuple[bool, int, bool, str]:
     """Sort key of the model list: stuck models, then more holds in a row, then a last verdict
     held, then by name."""
     last_held = (view.get("last_verdict") or {}).get("effective_decision") == "hold"
-    return (not is_stuck(view), -int(view["consecutive_holds"]), not last_held,
-            str(view["name"]))
+    return (not is_stuck(view), -int(view["consecutive_holds"]), not last_held, str(view["name"]))
 
 
 def is_stuck(view: Mapping[str, Any]) -> bool:
@@ -126,8 +144,9 @@ def is_stuck(view: Mapping[str, Any]) -> bool:
 
 
 @router.get("/", response_class=HTMLResponse)
-def models_page(request: Request, db: DbDep, clock: ClockDep, policies: PoliciesDep,
-                principal: WebReaderDep) -> Response:
+def models_page(
+    request: Request, db: DbDep, clock: ClockDep, policies: PoliciesDep, principal: WebReaderDep
+) -> Response:
     now = clock()
     with db.read() as session:
         shown = []
@@ -137,8 +156,9 @@ def models_page(request: Request, db: DbDep, clock: ClockDep, policies: Policies
             view = views.model_view(session, model=row, now=now, policies=policies)
             rows, _ = repo.list_verdicts(session, model_id=row.id, limit=48)
             overrides = repo.overrides_for(session, verdict_ids=[v.id for v, _ in rows])
-            view["strip"] = svg.decision_strip(strip_items(row.name, rows, overrides), cell=7,
-                                               gap=1.5, height=18)
+            view["strip"] = svg.decision_strip(
+                strip_items(row.name, rows, overrides), cell=7, gap=1.5, height=18
+            )
             shown.append(view)
     shown.sort(key=stuck_first)
     return render(request, "models.html", {"models": shown}, principal, now)
@@ -152,8 +172,9 @@ def _time_label(value: datetime | None) -> str:
     return moment.strftime("%m-%d %H:%M") if moment else "?"
 
 
-def model_context(session: Session, *, row: ModelRow, now: datetime, policies: Any,
-                  before: str | None) -> dict[str, Any]:
+def model_context(
+    session: Session, *, row: ModelRow, now: datetime, policies: Any, before: str | None
+) -> dict[str, Any]:
     view = views.model_view(session, model=row, now=now, policies=policies)
     window, _ = repo.list_verdicts(session, model_id=row.id, limit=WINDOW)
     before_id = None
@@ -162,15 +183,21 @@ def model_context(session: Session, *, row: ModelRow, now: datetime, policies: A
             before_id = repo.decode_cursor(before)
         except ValueError as exc:
             raise InvalidInput(str(exc), field="query.before") from None
-    page, next_id = repo.list_verdicts(session, model_id=row.id, limit=TABLE_PAGE,
-                                       before_id=before_id)
+    page, next_id = repo.list_verdicts(
+        session, model_id=row.id, limit=TABLE_PAGE, before_id=before_id
+    )
     ids = list({v.id for v, _ in window} | {v.id for v, _ in page})
     overrides = repo.overrides_for(session, verdict_ids=ids)
     policy = select_policy(policies, row.name)
     trend_rows = [
-        trends.Row(key=s.key, label=_time_label(v.created_at),
-                   decision=repo.effective_decision(v, overrides[v.id]), findings=v.findings,
-                   metrics=dict(s.metrics or {}), summary=s.summary)
+        trends.Row(
+            key=s.key,
+            label=_time_label(v.created_at),
+            decision=repo.effective_decision(v, overrides[v.id]),
+            findings=v.findings,
+            metrics=dict(s.metrics or {}),
+            summary=s.summary,
+        )
         for v, s in reversed(window)
     ]
     charts = [
@@ -199,14 +226,20 @@ def model_context(session: Session, *, row: ModelRow, now: datetime, policies: A
         "paged": before is not None,
         "promotions": promotions,
         "rollback_choices": earlier[:20],
-        "audit": [views.audit_view(a) for a in repo.list_audit(
-            session, model=row.name, limit=12, exclude_actor="gate")],
+        "audit": [
+            views.audit_view(a)
+            for a in repo.list_audit(session, model=row.name, limit=12, exclude_actor="gate")
+        ],
     }
 
 
 @router.get("/models/{model}", response_class=HTMLResponse)
 def model_page(
-    request: Request, model: str, db: DbDep, clock: ClockDep, policies: PoliciesDep,
+    request: Request,
+    model: str,
+    db: DbDep,
+    clock: ClockDep,
+    policies: PoliciesDep,
     principal: WebReaderDep,
     before: Annotated[str | None, Query(max_length=100)] = None,
     done: Annotated[str | None, Query(max_length=20)] = None,
@@ -215,8 +248,9 @@ def model_page(
     try:
         _require(principal, "read", model)
         with db.read() as session:
-            context = model_context(session, row=_model(session, model), now=now,
-                                    policies=policies, before=before)
+            context = model_context(
+                session, row=_model(session, model), now=now, policies=policies, before=before
+            )
     except TidegateError as exc:
         return error_page(request, exc, principal, now)
     context["done"] = done
@@ -275,8 +309,13 @@ def _verdict_by_key(session: Session, model: str, key: str) -> tuple[VerdictRow,
 
 @router.get("/models/{model}/snapshots/{key}", response_class=HTMLResponse)
 def verdict_page(
-    request: Request, model: str, key: str, db: DbDep, clock: ClockDep,
-    principal: WebReaderDep, done: Annotated[str | None, Query(max_length=20)] = None,
+    request: Request,
+    model: str,
+    key: str,
+    db: DbDep,
+    clock: ClockDep,
+    principal: WebReaderDep,
+    done: Annotated[str | None, Query(max_length=20)] = None,
 ) -> Response:
     now = clock()
     try:
@@ -291,9 +330,13 @@ def verdict_page(
 
 
 @router.get("/verdicts/{verdict_id}")
-def verdict_link(request: Request, verdict_id: Annotated[int, PathParam(ge=1, le=MAX_ID)],
-                 db: DbDep, clock: ClockDep,
-                 principal: WebReaderDep) -> Response:
+def verdict_link(
+    request: Request,
+    verdict_id: Annotated[int, PathParam(ge=1, le=MAX_ID)],
+    db: DbDep,
+    clock: ClockDep,
+    principal: WebReaderDep,
+) -> Response:
     try:
         with db.read() as session:
             verdict, model = operate.verdict_with_model(session, verdict_id=verdict_id)
@@ -326,20 +369,34 @@ def override_form(
         with db.transaction() as session:
             verdict, model = operate.verdict_with_model(session, verdict_id=verdict_id)
             _require(principal, "operate", model.name)
-            outcome = operate.override_verdict(session, verdict_id=verdict_id,
-                                               decision=decision, reason=reason,
-                                               actor=principal.name, now=now)
+            outcome = operate.override_verdict(
+                session,
+                verdict_id=verdict_id,
+                decision=decision,
+                reason=reason,
+                actor=principal.name,
+                now=now,
+            )
             target = format.snapshot_url(model.name, outcome.snapshot.key)
     except (InvalidInput, Conflict) as exc:
-        return _form_again(request, exc, principal, now, verdict_id=verdict_id,
-                           decision=decision, reason=reason)
+        return _form_again(
+            request, exc, principal, now, verdict_id=verdict_id, decision=decision, reason=reason
+        )
     except TidegateError as exc:
         return error_page(request, exc, principal, now)
     return RedirectResponse(target + "?done=override", status_code=303)
 
 
-def _form_again(request: Request, exc: TidegateError, principal: Principal, now: datetime, *,
-                verdict_id: int, decision: str, reason: str) -> Response:
+def _form_again(
+    request: Request,
+    exc: TidegateError,
+    principal: Principal,
+    now: datetime,
+    *,
+    verdict_id: int,
+    decision: str,
+    reason: str,
+) -> Response:
     """The verdict page again, with the problem beside the form and what was typed kept.
     Nothing was stored (the transaction rolled back)."""
     try:
@@ -374,21 +431,30 @@ def rollback_form(
         if not snapshot.strip():
             raise InvalidInput("say which snapshot should serve", field="snapshot")
         with db.transaction() as session:
-            operate.rollback(session, model_name=model, key=snapshot.strip(), reason=reason,
-                             actor=principal.name, now=now)
+            operate.rollback(
+                session,
+                model_name=model,
+                key=snapshot.strip(),
+                reason=reason,
+                actor=principal.name,
+                now=now,
+            )
     except (InvalidInput, Conflict, NotFound) as exc:
         try:
             with db.read() as session:
-                context = model_context(session, row=_model(session, model), now=now,
-                                        policies=policies, before=None)
+                context = model_context(
+                    session, row=_model(session, model), now=now, policies=policies, before=None
+                )
         except TidegateError as inner:
             return error_page(request, inner, principal, now)
-        context.update(rollback_error=exc.message, typed_snapshot=snapshot,
-                       typed_reason=reason, done=None)
+        context.update(
+            rollback_error=exc.message, typed_snapshot=snapshot, typed_reason=reason, done=None
+        )
         return render(request, "model.html", context, principal, now, exc.status)
     except TidegateError as exc:
         return error_page(request, exc, principal, now)
     if back == "snapshot":
-        return RedirectResponse(format.snapshot_url(model, snapshot.strip()) + "?done=rollback",
-                                status_code=303)
+        return RedirectResponse(
+            format.snapshot_url(model, snapshot.strip()) + "?done=rollback", status_code=303
+        )
     return RedirectResponse(format.model_url(model) + "?done=rollback", status_code=303)

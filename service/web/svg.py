@@ -108,8 +108,7 @@ def _svg(width: float, height: float, title: str, body: list[str], css: str = ""
 
 
 def _text(x: float, y: float, text: str, cls: str = "tg-label", anchor: str = "middle") -> str:
-    return (f'<text x="{r(x)}" y="{r(y)}" class="{cls}" text-anchor="{anchor}">'
-            f"{escape(text)}</text>")
+    return f'<text x="{r(x)}" y="{r(y)}" class="{cls}" text-anchor="{anchor}">{escape(text)}</text>'
 
 
 # --- distributions --------------------------------------------------------------------------
@@ -137,8 +136,12 @@ def histogram_overlay(
     scale (the largest share of any series). Bar heights are proportional to shares."""
     box = Box(width, height, top=34)
     if len(edges) < 2 or not series:
-        return _svg(width, height, "no distribution to draw",
-                    [_text(width / 2, height / 2, "no finite scores to draw")])
+        return _svg(
+            width,
+            height,
+            "no distribution to draw",
+            [_text(width / 2, height / 2, "no finite scores to draw")],
+        )
     top_share = max((max(s.shares, default=0.0) for s in series), default=0.0) or 1.0
     ticks_y = nice_ticks(0.0, top_share, 4)
     if len(ticks_y) >= 2 and ticks_y[-1] < top_share:  # end the axis on a round tick
@@ -148,12 +151,16 @@ def histogram_overlay(
     ys = Scale(0.0, y_max, box.y0, box.y1)
     body: list[str] = []
     for t in ticks_y:
-        body.append(f'<line class="tg-grid" x1="{r(box.x0)}" x2="{r(box.x1)}" y1="{r(ys(t))}" '
-                    f'y2="{r(ys(t))}"/>')
+        body.append(
+            f'<line class="tg-grid" x1="{r(box.x0)}" x2="{r(box.x1)}" y1="{r(ys(t))}" '
+            f'y2="{r(ys(t))}"/>'
+        )
         body.append(_text(box.x0 - 6, ys(t) + 4, pct(t, 0), anchor="end"))
     for t in nice_ticks(edges[0], edges[-1], 6):
-        body.append(f'<line class="tg-axis" x1="{r(xs(t))}" x2="{r(xs(t))}" y1="{r(box.y0)}" '
-                    f'y2="{r(box.y0 + 4)}"/>')
+        body.append(
+            f'<line class="tg-axis" x1="{r(xs(t))}" x2="{r(xs(t))}" y1="{r(box.y0)}" '
+            f'y2="{r(box.y0 + 4)}"/>'
+        )
         body.append(_text(xs(t), box.y0 + 16, num(t, 3)))
     body.append(_text((box.x0 + box.x1) / 2, height - 2, x_label, "tg-label tg-muted"))
     for s in series:
@@ -171,19 +178,23 @@ def histogram_overlay(
     for s in series:
         if s.mean is not None and edges[0] <= s.mean <= edges[-1]:
             x = xs(s.mean)
-            body.append(f'<line class="tg-mean {s.css}" x1="{r(x)}" x2="{r(x)}" '
-                        f'y1="{r(box.y0)}" y2="{r(box.y1)}"/>')
-    body.append(f'<line class="tg-axis" x1="{r(box.x0)}" x2="{r(box.x1)}" y1="{r(box.y0)}" '
-                f'y2="{r(box.y0)}"/>')
+            body.append(
+                f'<line class="tg-mean {s.css}" x1="{r(x)}" x2="{r(x)}" '
+                f'y1="{r(box.y0)}" y2="{r(box.y1)}"/>'
+            )
+    body.append(
+        f'<line class="tg-axis" x1="{r(box.x0)}" x2="{r(box.x1)}" y1="{r(box.y0)}" '
+        f'y2="{r(box.y0)}"/>'
+    )
     x = box.x0
     for s in series:  # legend, top left, one row
         text = s.label + (f" (mean {num(s.mean)})" if s.mean is not None else "")
-        body.append(f'<rect class="tg-swatch {s.css}" x="{r(x)}" y="8" width="12" '
-                    f'height="12"/>')
+        body.append(f'<rect class="tg-swatch {s.css}" x="{r(x)}" y="8" width="12" height="12"/>')
         body.append(_text(x + 17, 18, text, "tg-legend", "start"))
         x += 34 + LEGEND_CHAR * len(text)
-    return _svg(width, height, "Score distributions: " + ", ".join(s.label for s in series),
-                body, "tg-hist")
+    return _svg(
+        width, height, "Score distributions: " + ", ".join(s.label for s in series), body, "tg-hist"
+    )
 
 
 # --- trends ---------------------------------------------------------------------------------
@@ -211,7 +222,7 @@ def core_range(values: Sequence[float], fixed: Sequence[float]) -> tuple[float, 
     lo, hi = min(everything), max(everything)
     ordered = sorted(values)
     k = len(ordered) // 10
-    middle = ordered[k: len(ordered) - k] if len(ordered) >= 10 else ordered
+    middle = ordered[k : len(ordered) - k] if len(ordered) >= 10 else ordered
     core_lo, core_hi = min(list(middle) + list(fixed)), max(list(middle) + list(fixed))
     spread = core_hi - core_lo
     if spread <= 0:
@@ -242,9 +253,16 @@ def trend_chart(
     values = [p.value for p in points if p.value is not None]
     limits = [p.limit for p in points if p.limit is not None]
     if not values:
-        return _svg(width, height, title, [_text(box.x0, 16, title, "tg-legend", "start"),
-                                           _text(width / 2, height / 2, "no values yet",
-                                                 "tg-label tg-muted")], "tg-trend")
+        return _svg(
+            width,
+            height,
+            title,
+            [
+                _text(box.x0, 16, title, "tg-legend", "start"),
+                _text(width / 2, height / 2, "no values yet", "tg-label tg-muted"),
+            ],
+            "tg-trend",
+        )
     lo, hi, clipped = core_range(values, limits + [b[1] for b in bands])
     pad = (hi - lo) * 0.08 or max(abs(hi) * 0.05, 1e-6)
     lo, hi = lo - pad, hi + pad
@@ -268,17 +286,23 @@ def trend_chart(
         legend_x -= 6.2 * len(text)
         body.append(_text(legend_x, 16, text, "tg-label", "start"))
         if css:
-            body.append(f'<line class="{css}" x1="{r(legend_x - 24)}" x2="{r(legend_x - 4)}" '
-                        f'y1="12" y2="12"/>')
+            body.append(
+                f'<line class="{css}" x1="{r(legend_x - 24)}" x2="{r(legend_x - 4)}" '
+                f'y1="12" y2="12"/>'
+            )
         legend_x -= 36
     for t in nice_ticks(lo, hi, 5):
-        body.append(f'<line class="tg-grid" x1="{r(box.x0)}" x2="{r(box.x1)}" y1="{r(ys(t))}" '
-                    f'y2="{r(ys(t))}"/>')
+        body.append(
+            f'<line class="tg-grid" x1="{r(box.x0)}" x2="{r(box.x1)}" y1="{r(ys(t))}" '
+            f'y2="{r(ys(t))}"/>'
+        )
         body.append(_text(box.x0 - 6, ys(t) + 4, num(t, 3), anchor="end"))
     for _name, value in bands:
         if lo <= value <= hi:
-            body.append(f'<line class="tg-band" x1="{r(box.x0)}" x2="{r(box.x1)}" '
-                        f'y1="{r(ys(value))}" y2="{r(ys(value))}"/>')
+            body.append(
+                f'<line class="tg-band" x1="{r(box.x0)}" x2="{r(box.x1)}" '
+                f'y1="{r(ys(value))}" y2="{r(ys(value))}"/>'
+            )
     # the limit as a step line: each verdict's limit holds until the next one's
     segments: list[str] = []
     for i, p in enumerate(points):
@@ -302,18 +326,25 @@ def trend_chart(
         if p.value is None:
             continue
         cls = "tg-dot" + (" tg-breach" if p.breach else "") + (" tg-held" if p.held else "")
-        tip = f"{p.label}: {num(p.value)}" + (f" (limit {num(p.limit)})" if p.limit is not None
-                                               else "") + (f"; {p.note}" if p.note else "")
+        tip = (
+            f"{p.label}: {num(p.value)}"
+            + (f" (limit {num(p.limit)})" if p.limit is not None else "")
+            + (f"; {p.note}" if p.note else "")
+        )
         x, y = xs(i), y_of(p.value)
         if p.value > hi or p.value < lo:  # off the scale: a triangle on the edge
             tip += " (off the scale)"
             tip_y = 6.0 if p.value > hi else -6.0
-            dot = (f'<path class="{cls} tg-off" d="M{r(x)} {r(y - tip_y)}L{r(x - 5)} {r(y)}'
-                   f'L{r(x + 5)} {r(y)}Z"><title>{escape(tip)}</title></path>')
+            dot = (
+                f'<path class="{cls} tg-off" d="M{r(x)} {r(y - tip_y)}L{r(x - 5)} {r(y)}'
+                f'L{r(x + 5)} {r(y)}Z"><title>{escape(tip)}</title></path>'
+            )
         else:
-            dot = (f'<circle class="{cls}" cx="{r(x)}" cy="{r(y)}" '
-                   f'r="{3.6 if p.breach or p.held else 2.4}"><title>{escape(tip)}</title>'
-                   "</circle>")
+            dot = (
+                f'<circle class="{cls}" cx="{r(x)}" cy="{r(y)}" '
+                f'r="{3.6 if p.breach or p.held else 2.4}"><title>{escape(tip)}</title>'
+                "</circle>"
+            )
         if p.href:
             dot = f'<a href="{escape(p.href)}">{dot}</a>'
         body.append(dot)
@@ -346,16 +377,24 @@ def decision_strip(
         cls = "tg-cell " + ("tg-hold" if item.decision == "hold" else "tg-promote")
         if item.overridden:
             cls += " tg-overridden"
-        rect = (f'<rect class="{cls}" x="{r(i * (cell + gap))}" y="1" width="{r(cell)}" '
-                f'height="{r(size - 2)}" rx="2"><title>{escape(item.title)}</title></rect>')
+        rect = (
+            f'<rect class="{cls}" x="{r(i * (cell + gap))}" y="1" width="{r(cell)}" '
+            f'height="{r(size - 2)}" rx="2"><title>{escape(item.title)}</title></rect>'
+        )
         if item.href:
             rect = f'<a href="{escape(item.href)}">{rect}</a>'
         body.append(rect)
     return _svg(width, size, f"{len(items)} verdicts, oldest first", body, "tg-strip")
 
 
-def limit_gauge(value: float | None, limit: float | None, outcome: str, *, width: float = 110,
-                height: float = 14) -> Markup:
+def limit_gauge(
+    value: float | None,
+    limit: float | None,
+    outcome: str,
+    *,
+    width: float = 110,
+    height: float = 14,
+) -> Markup:
     """A bar of |value| against a tick at |limit| on a scale to 1.25 times the larger.
     Empty when either is missing."""
     if value is None or limit is None or (value == 0 and limit == 0):
@@ -364,7 +403,8 @@ def limit_gauge(value: float | None, limit: float | None, outcome: str, *, width
     xs = Scale(0.0, top, 1, width - 1)
     fill = xs(abs(value)) - 1
     cls = {"breach": "tg-hold", "advisory": "tg-warn", "inconclusive": "tg-warn"}.get(
-        outcome, "tg-okfill")
+        outcome, "tg-okfill"
+    )
     body = [
         f'<rect class="tg-track" x="1" y="3" width="{r(width - 2)}" height="{r(height - 6)}" '
         'rx="2"/>',
@@ -373,5 +413,4 @@ def limit_gauge(value: float | None, limit: float | None, outcome: str, *, width
         f'<line class="tg-tick" x1="{r(xs(abs(limit)))}" x2="{r(xs(abs(limit)))}" y1="0" '
         f'y2="{r(height)}"/>',
     ]
-    return _svg(width, height, f"value {num(value)} against limit {num(limit)}", body,
-                "tg-gauge")
+    return _svg(width, height, f"value {num(value)} against limit {num(limit)}", body, "tg-gauge")

@@ -81,12 +81,19 @@ def _by_check(row: Row) -> dict[str, Mapping[str, Any]]:
 
 def build_trends(model: str, rows: Sequence[Row], policy: Policy | None) -> list[Trend]:
     """Trends for the statistics of the checks, the reported metrics and the mean score."""
-    def point(row: Row, f: Mapping[str, Any] | None, value: float | None,
-              limit: float | None) -> TrendPoint:
-        return TrendPoint(row.label, value, limit,
-                          breach=bool(f and f.get("outcome") == "breach"),
-                          held=row.decision == "hold", href=snapshot_url(model, row.key),
-                          note=row.key)
+
+    def point(
+        row: Row, f: Mapping[str, Any] | None, value: float | None, limit: float | None
+    ) -> TrendPoint:
+        return TrendPoint(
+            row.label,
+            value,
+            limit,
+            breach=bool(f and f.get("outcome") == "breach"),
+            held=row.decision == "hold",
+            href=snapshot_url(model, row.key),
+            note=row.key,
+        )
 
     indexed = [(row, _by_check(row)) for row in rows]
     trends: list[Trend] = []
@@ -99,8 +106,11 @@ def build_trends(model: str, rows: Sequence[Row], policy: Policy | None) -> list
         points = []
         for row, found in indexed:
             hit = found.get(check)
-            points.append(point(row, hit, hit.get("value") if hit else None,
-                                hit.get("limit") if hit else None))
+            points.append(
+                point(
+                    row, hit, hit.get("value") if hit else None, hit.get("limit") if hit else None
+                )
+            )
         label = statistic.upper() if len(statistic) <= 4 else statistic
         trends.append(Trend(f"{check}: {label}", points, []))
     configs = _metric_configs(policy)

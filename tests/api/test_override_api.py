@@ -22,11 +22,14 @@ def baseline(h: Harness, model: str = "shelf-ranker") -> str | None:
     return h.http.get(f"/v1/models/{model}").json()["baseline"]  # type: ignore[no-any-return]
 
 
-def override(h: Harness, verdict_id: int, decision: str, reason: str = "known change",
-             actor: str = "alice") -> httpx.Response:
-    return h.http.post(f"/v1/verdicts/{verdict_id}/override",
-                       json={"decision": decision, "reason": reason},
-                       headers={"X-Actor": actor})
+def override(
+    h: Harness, verdict_id: int, decision: str, reason: str = "known change", actor: str = "alice"
+) -> httpx.Response:
+    return h.http.post(
+        f"/v1/verdicts/{verdict_id}/override",
+        json={"decision": decision, "reason": reason},
+        headers={"X-Actor": actor},
+    )
 
 
 def test_scenario_holds_s04_against_s03(h: Harness) -> None:
@@ -43,7 +46,10 @@ def test_override_hold_to_promote_is_stored_with_actor_and_time(h: Harness) -> N
     assert body["override"]["reason"] == "planned catalogue relaunch"
     assert body["override"]["created_at"] == h.clock.now.isoformat().replace("+00:00", "Z")
     assert (body["decision_before"], body["baseline_before"], body["baseline_after"]) == (
-        "hold", "s03", "s04")
+        "hold",
+        "s03",
+        "s04",
+    )
     assert body["baseline_moved"] is True
 
 
@@ -73,7 +79,10 @@ def test_override_shows_in_model_list_and_verdict_list(h: Harness) -> None:
     models = {m["name"]: m for m in h.http.get("/v1/models").json()["data"]}
     last = models["shelf-ranker"]["last_verdict"]
     assert (last["decision"], last["effective_decision"], last["overridden"]) == (
-        "hold", "promote", True)
+        "hold",
+        "promote",
+        True,
+    )
     assert models["shelf-ranker"]["consecutive_holds"] == 0
     listed = h.http.get("/v1/models/shelf-ranker/verdicts").json()["data"][0]
     assert listed["snapshot"] == "s04" and listed["effective_decision"] == "promote"
@@ -108,7 +117,10 @@ def test_override_of_serving_promote_rolls_back(h: Harness) -> None:
     vid = h.verdicts["s03"]["verdict_id"]
     body = override(h, vid, "hold", "complaints from the shop floor").json()
     assert (body["decision_before"], body["baseline_before"], body["baseline_after"]) == (
-        "promote", "s03", "s02")
+        "promote",
+        "s03",
+        "s02",
+    )
     assert baseline(h) == "s02"
 
 
@@ -122,7 +134,7 @@ def test_override_of_promote_that_no_longer_serves_keeps_baseline(h: Harness) ->
 
 def test_override_of_first_snapshot_has_nothing_to_return_to(h: Harness) -> None:
     vid = h.verdicts["a02"]["verdict_id"]
-    override(h, vid, "hold")                       # a02 -> a01
+    override(h, vid, "hold")  # a02 -> a01
     assert baseline(h, "also-read") == "a01"
     body = override(h, h.verdicts["a01"]["verdict_id"], "hold").json()
     assert body["baseline_moved"] is False
@@ -146,19 +158,25 @@ def test_override_to_decision_in_force_is_409_and_stores_nothing(h: Harness) -> 
     assert response.status_code == 409
     assert response.json()["error"]["code"] == "conflict"
     assert h.http.get(f"/v1/verdicts/{vid}").json()["overrides"] == []
-    assert h.http.get("/v1/audit", params={"model": "shelf-ranker"}).json()["data"][0][
-        "action"] != "verdict.override"
+    assert (
+        h.http.get("/v1/audit", params={"model": "shelf-ranker"}).json()["data"][0]["action"]
+        != "verdict.override"
+    )
 
 
-@pytest.mark.parametrize("body, field", [
-    ({"decision": "promote"}, "reason"),
-    ({"decision": "promote", "reason": ""}, "reason"),
-    ({"decision": "promote", "reason": "   "}, "reason"),
-    ({"decision": "ship-it", "reason": "x"}, "decision"),
-    ({"decision": "promote", "reason": "x", "extra": 1}, "extra"),
-])
-def test_override_bad_body_is_422_and_stores_nothing(h: Harness, body: dict[str, object],
-                                                     field: str) -> None:
+@pytest.mark.parametrize(
+    "body, field",
+    [
+        ({"decision": "promote"}, "reason"),
+        ({"decision": "promote", "reason": ""}, "reason"),
+        ({"decision": "promote", "reason": "   "}, "reason"),
+        ({"decision": "ship-it", "reason": "x"}, "decision"),
+        ({"decision": "promote", "reason": "x", "extra": 1}, "extra"),
+    ],
+)
+def test_override_bad_body_is_422_and_stores_nothing(
+    h: Harness, body: dict[str, object], field: str
+) -> None:
     vid = h.verdicts["s04"]["verdict_id"]
     response = h.http.post(f"/v1/verdicts/{vid}/override", json=body)
     assert response.status_code == 422
@@ -172,7 +190,11 @@ def test_override_unknown_verdict_is_404(h: Harness) -> None:
     response = override(h, 9999, "promote")
     assert response.status_code == 404
     assert response.json()["error"] == {
-        "code": "not_found", "message": "no verdict 9999", "field": "verdict_id", "details": []}
+        "code": "not_found",
+        "message": "no verdict 9999",
+        "field": "verdict_id",
+        "details": [],
+    }
 
 
 def test_viewer_may_read_but_not_override_or_roll_back(h: Harness) -> None:
@@ -182,8 +204,9 @@ def test_viewer_may_read_but_not_override_or_roll_back(h: Harness) -> None:
         response = override(h, vid, "promote")
         assert response.status_code == 403
         assert response.json()["error"]["code"] == "forbidden"
-        rollback = h.http.put("/v1/models/shelf-ranker/baseline",
-                              json={"snapshot": "s01", "reason": "x"})
+        rollback = h.http.put(
+            "/v1/models/shelf-ranker/baseline", json={"snapshot": "s01", "reason": "x"}
+        )
         assert rollback.status_code == 403
         assert h.http.get(f"/v1/verdicts/{vid}/evidence").status_code == 200
         assert h.http.get("/v1/audit").status_code == 200
@@ -195,7 +218,8 @@ def test_viewer_may_read_but_not_override_or_roll_back(h: Harness) -> None:
 
 def test_operator_scoped_to_other_models_is_403(h: Harness) -> None:
     h.app.dependency_overrides[get_principal] = lambda: Principal(
-        "otto", role="operator", models=("also-*",))
+        "otto", role="operator", models=("also-*",)
+    )
     try:
         assert override(h, h.verdicts["s04"]["verdict_id"], "promote").status_code == 403
         assert override(h, h.verdicts["a02"]["verdict_id"], "hold").status_code == 201
@@ -208,24 +232,36 @@ def test_operator_scoped_to_other_models_is_403(h: Harness) -> None:
 
 
 def test_rollback_by_api_is_audited_with_cause(h: Harness) -> None:
-    response = h.http.put("/v1/models/shelf-ranker/baseline",
-                          json={"snapshot": "s01", "reason": "s02 and s03 mis-joined"},
-                          headers={"X-Actor": "carol"})
+    response = h.http.put(
+        "/v1/models/shelf-ranker/baseline",
+        json={"snapshot": "s01", "reason": "s02 and s03 mis-joined"},
+        headers={"X-Actor": "carol"},
+    )
     assert response.status_code == 200, response.text
-    assert response.json() == {"model": "shelf-ranker", "baseline": "s01", "previous": "s03",
-                               "cause": "rollback"}
+    assert response.json() == {
+        "model": "shelf-ranker",
+        "baseline": "s01",
+        "previous": "s03",
+        "cause": "rollback",
+    }
     entry = h.http.get("/v1/audit", params={"model": "shelf-ranker"}).json()["data"][0]
     assert (entry["actor"], entry["action"], entry["before"], entry["after"]) == (
-        "carol", "baseline.rollback", {"baseline": "s03"}, {"baseline": "s01"})
-    again = h.http.put("/v1/models/shelf-ranker/baseline",
-                       json={"snapshot": "s01", "reason": "twice"})
+        "carol",
+        "baseline.rollback",
+        {"baseline": "s03"},
+        {"baseline": "s01"},
+    )
+    again = h.http.put(
+        "/v1/models/shelf-ranker/baseline", json={"snapshot": "s01", "reason": "twice"}
+    )
     assert again.status_code == 409
 
 
 def test_gate_promotions_are_audited(h: Harness) -> None:
     entries = h.http.get("/v1/audit", params={"model": "shelf-ranker", "limit": 50}).json()["data"]
-    promoted = [(e["target"], e["before"]["baseline"]) for e in entries
-                if e["action"] == "baseline.verdict"]
+    promoted = [
+        (e["target"], e["before"]["baseline"]) for e in entries if e["action"] == "baseline.verdict"
+    ]
     assert promoted == [("s03", "s02"), ("s02", "s01"), ("s01", None)]
     assert all(e["actor"] == "gate" for e in entries)
 
@@ -251,8 +287,11 @@ def test_evidence_of_held_verdict(h: Harness) -> None:
     assert sum(dist["candidate"]["counts"]) == 400 and sum(dist["baseline"]["counts"]) == 400
     assert dist["candidate"]["mean"] > dist["baseline"]["mean"] + 0.25
     assert {(s["segment"], s["value"]) for s in ev["segments"]} == {
-        ("device", "app"), ("device", "web"), ("reader_tenure", "new"),
-        ("reader_tenure", "returning")}
+        ("device", "app"),
+        ("device", "web"),
+        ("reader_tenure", "new"),
+        ("reader_tenure", "returning"),
+    }
     assert sum(s["rows"] for s in ev["segments"] if s["segment"] == "device") == 400
     assert ev["baseline_snapshot"]["key"] == "s03" and ev["serving"] == "s03"
     assert h.http.get("/v1/verdicts/9999/evidence").status_code == 404

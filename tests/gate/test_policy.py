@@ -47,7 +47,8 @@ def test_digest_is_of_the_exact_text() -> None:
             r"p\.toml, check 'c1', key 'binz': unknown key",
         ),
         (
-            'models = ["a"]\n[[checks]]\nname = "c2"\nkind = "drift"\nstatistic = "nope"\nmax = 1\n',
+            'models = ["a"]\n[[checks]]\nname = "c2"\nkind = "drift"\n'
+            'statistic = "nope"\nmax = 1\n',
             r"check 'c2', key 'statistic'.*unknown drift statistic 'nope'",
         ),
         (

@@ -35,13 +35,22 @@ def _browser_or_skip(profile: Path) -> Any:
     chromium = CHROMIUM if Path(CHROMIUM).exists() else shutil.which("chromium")
     driver = CHROMEDRIVER if Path(CHROMEDRIVER).exists() else shutil.which("chromedriver")
     if not chromium or not driver:
-        skip_or_fail("chromium and chromedriver are not installed "
-                     "(Debian: apt-get install chromium chromium-driver)")
+        skip_or_fail(
+            "chromium and chromedriver are not installed "
+            "(Debian: apt-get install chromium chromium-driver)"
+        )
     options = webdriver.ChromeOptions()
     options.binary_location = str(chromium)
-    for arg in ("--headless=new", "--no-sandbox", "--disable-gpu",
-                "--disable-background-networking", "--disable-dev-shm-usage",
-                f"--user-data-dir={profile}", "--window-size=1280,1000", "--hide-scrollbars"):
+    for arg in (
+        "--headless=new",
+        "--no-sandbox",
+        "--disable-gpu",
+        "--disable-background-networking",
+        "--disable-dev-shm-usage",
+        f"--user-data-dir={profile}",
+        "--window-size=1280,1000",
+        "--hide-scrollbars",
+    ):
         options.add_argument(arg)
     return webdriver.Chrome(service=Service(str(driver)), options=options)
 
@@ -134,8 +143,11 @@ def test_held_verdict_override_shows_on_timeline(service: LiveService, browser: 
     # 6. the override on the model's timeline, strip and baseline history
     browser.find_element(By.CSS_SELECTOR, ".crumbs a[href='/ui/models/shelf-ranker']").click()
     wait_for(browser, lambda d: d.find_elements(By.CSS_SELECTOR, "table.timeline"), "the model")
-    row = next(r for r in browser.find_elements(By.CSS_SELECTOR, "table.timeline tbody tr")
-               if "s04" in r.text)
+    row = next(
+        r
+        for r in browser.find_elements(By.CSS_SELECTOR, "table.timeline tbody tr")
+        if "s04" in r.text
+    )
     assert "overridden to promote" in row.text and "ticket 4711" in row.text
     assert len(browser.find_elements(By.CSS_SELECTOR, "svg.tg-strip rect.tg-overridden")) == 1
     assert len(browser.find_elements(By.CSS_SELECTOR, "svg.tg-trend")) == 3
@@ -152,7 +164,8 @@ def test_rollback_from_the_model_page(service: LiveService, browser: Any) -> Non
     field.clear()
     field.send_keys("s02")
     browser.find_element(By.CSS_SELECTOR, "form[action$='/baseline'] textarea").send_keys(
-        "s03 and s04 share a broken feature join")
+        "s03 and s04 share a broken feature join"
+    )
     browser.find_element(By.CSS_SELECTOR, "form[action$='/baseline'] button").click()
     wait_for(browser, lambda d: d.current_url.endswith("?done=rollback"), "the roll-back")
     assert "Baseline changed" in browser.find_element(By.CSS_SELECTOR, ".note-done").text

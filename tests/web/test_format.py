@@ -11,14 +11,17 @@ from service.web import format
 NOW = datetime(2026, 12, 1, 3, 0, tzinfo=UTC)
 
 
-@pytest.mark.parametrize("delta, text", [
-    (timedelta(seconds=20), "just now"),
-    (timedelta(minutes=12), "12 min ago"),
-    (timedelta(hours=3, minutes=5), "3 h 5 min ago"),
-    (timedelta(hours=2), "2 h ago"),
-    (timedelta(days=2, hours=4, minutes=59), "2 d 4 h ago"),
-    (-timedelta(minutes=5), "in 5 min"),
-])
+@pytest.mark.parametrize(
+    "delta, text",
+    [
+        (timedelta(seconds=20), "just now"),
+        (timedelta(minutes=12), "12 min ago"),
+        (timedelta(hours=3, minutes=5), "3 h 5 min ago"),
+        (timedelta(hours=2), "2 h ago"),
+        (timedelta(days=2, hours=4, minutes=59), "2 d 4 h ago"),
+        (-timedelta(minutes=5), "in 5 min"),
+    ],
+)
 def test_age_text(delta: timedelta, text: str) -> None:
     assert format.age_text(NOW - delta, NOW) == text
 
@@ -31,11 +34,20 @@ def test_times_are_utc_whatever_the_input_zone() -> None:
     assert format.age_text("2026-12-01T02:48:00Z", NOW) == "12 min ago"
 
 
-@pytest.mark.parametrize("value, text", [
-    (0.31234, "0.312"), (3000.0, "3,000"), (1840000, "1,840,000"), (1234.56, "1,235"),
-    (-0.0021, "-0.0021"), (0.00001234, "1.23e-05"), (0.0, "0"), (None, "–"),
-    (float("nan"), "–"),
-])
+@pytest.mark.parametrize(
+    "value, text",
+    [
+        (0.31234, "0.312"),
+        (3000.0, "3,000"),
+        (1840000, "1,840,000"),
+        (1234.56, "1,235"),
+        (-0.0021, "-0.0021"),
+        (0.00001234, "1.23e-05"),
+        (0.0, "0"),
+        (None, "–"),
+        (float("nan"), "–"),
+    ],
+)
 def test_num(value: float | None, text: str) -> None:
     assert format.num(value) == text
 
@@ -52,12 +64,15 @@ def test_units_and_p_values() -> None:
 
 
 def test_stable_links_keep_keys_readable_and_safe() -> None:
-    assert (format.snapshot_url("shelf-ranker", "2026-12-01T02:45Z")
-            == "/ui/models/shelf-ranker/snapshots/2026-12-01T02:45Z")
+    assert (
+        format.snapshot_url("shelf-ranker", "2026-12-01T02:45Z")
+        == "/ui/models/shelf-ranker/snapshots/2026-12-01T02:45Z"
+    )
     assert format.snapshot_url("m", "a b?c#d") == "/ui/models/m/snapshots/a%20b%3Fc%23d"
 
 
 def test_state_text() -> None:
     assert format.state_text({"decision": "hold", "baseline": None, "override_id": 3}) == (
-        "decision hold, baseline none")
+        "decision hold, baseline none"
+    )
     assert format.state_text(None) == format.DASH

@@ -51,7 +51,7 @@ def test_verdict_page_answers_why_how_sure_what_changed_what_next(h: Harness) ->
     assert response.status_code == 200
     html = response.text
     assert ">HELD<" in html
-    answers = html[html.index('id="answers"'):html.index('id="act"')]
+    answers = html[html.index('id="answers"') : html.index('id="act"')]
     for title in ("Why", "How sure", "What changed", "What you can do"):
         assert f"<h3>{title}</h3>" in answers
     assert "score PSI 3.79 vs baseline exceeds 0.1" in answers
@@ -78,11 +78,11 @@ def test_verdict_page_draws_both_distributions(h: Harness) -> None:
 
 def test_verdict_page_findings_segments_and_neighbours(h: Harness) -> None:
     html = h.http.get("/ui/models/shelf-ranker/snapshots/s04").text
-    findings = html[html.index('id="findings"'):html.index('id="segments"')]
+    findings = html[html.index('id="findings"') : html.index('id="segments"')]
     assert "score-psi" in findings and "reported-auc" in findings
     assert "p &lt; 1e-16" in findings
     assert "0.754" in findings and "0.7" in findings  # baseline and candidate AUC
-    segments = html[html.index('id="segments"'):html.index('id="snapshots"')]
+    segments = html[html.index('id="segments"') : html.index('id="snapshots"')]
     for value in ("app", "web", "new", "returning"):
         assert f"<strong>{value}</strong>" in segments
     assert 'rel="prev" href="/ui/models/shelf-ranker/snapshots/s03"' in html
@@ -106,8 +106,9 @@ def test_stable_link_with_colons_in_the_key(h: Harness) -> None:
     assert encoded.status_code == 200
 
 
-@pytest.mark.parametrize("url", ["/ui/models/nope", "/ui/models/shelf-ranker/snapshots/nope",
-                                 "/ui/verdicts/9999"])
+@pytest.mark.parametrize(
+    "url", ["/ui/models/nope", "/ui/models/shelf-ranker/snapshots/nope", "/ui/verdicts/9999"]
+)
 def test_unknown_things_are_404_pages(h: Harness, url: str) -> None:
     response = h.http.get(url)
     assert response.status_code == 404
@@ -119,24 +120,34 @@ def test_model_page_trends_timeline_and_baseline_history(h: Harness) -> None:
     html = h.http.get("/ui/models/shelf-ranker").text
     titles = [c.find("{http://www.w3.org/2000/svg}title").text for c in svgs(html, "tg-trend")]
     assert titles == ["score-psi: PSI", "reported auc", "mean score of the sample"]
-    (auc,) = [c for c in svgs(html, "tg-trend") if "auc" in c.find(
-        "{http://www.w3.org/2000/svg}title").text]
+    (auc,) = [
+        c
+        for c in svgs(html, "tg-trend")
+        if "auc" in c.find("{http://www.w3.org/2000/svg}title").text
+    ]
     classes = [e.get("class") for e in auc.iter()]
     assert "tg-limit" in classes and "tg-band" in classes  # allowed drop and floor drawn
-    assert "tg-dot tg-breach tg-held" in classes            # s04 breached the AUC check
-    timeline = html[html.index('id="timeline"'):html.index('id="baseline"')]
+    assert "tg-dot tg-breach tg-held" in classes  # s04 breached the AUC check
+    timeline = html[html.index('id="timeline"') : html.index('id="baseline"')]
     assert re.findall(r'snapshots/(s0\d)"', timeline) == ["s04", "s03", "s02", "s01"]
-    history = html[html.index('id="baseline"'):html.index('id="rollback"')]
+    history = html[html.index('id="baseline"') : html.index('id="rollback"')]
     assert history.count("promoted by the gate") == 3
 
 
-def override_form(h: Harness, decision: str = "promote", reason: str = "planned relaunch",
-                  token: str | None = None) -> httpx.Response:
+def override_form(
+    h: Harness,
+    decision: str = "promote",
+    reason: str = "planned relaunch",
+    token: str | None = None,
+) -> httpx.Response:
     page = h.http.get("/ui/models/shelf-ranker/snapshots/s04").text
     return h.http.post(
         "/ui/verdicts/6/override",
-        data={"decision": decision, "reason": reason,
-              "csrf_token": csrf_of(page) if token is None else token},
+        data={
+            "decision": decision,
+            "reason": reason,
+            "csrf_token": csrf_of(page) if token is None else token,
+        },
         follow_redirects=False,
     )
 
@@ -144,8 +155,7 @@ def override_form(h: Harness, decision: str = "promote", reason: str = "planned 
 def test_override_form_stores_override_and_shows_it_everywhere(h: Harness) -> None:
     response = override_form(h)
     assert response.status_code == 303
-    assert response.headers["location"] == (
-        "/ui/models/shelf-ranker/snapshots/s04?done=override")
+    assert response.headers["location"] == ("/ui/models/shelf-ranker/snapshots/s04?done=override")
     detail = h.http.get("/v1/verdicts/6").json()
     assert detail["decision"] == "hold" and detail["effective_decision"] == "promote"
     assert detail["overrides"][0]["reason"] == "planned relaunch"
@@ -156,7 +166,7 @@ def test_override_form_stores_override_and_shows_it_everywhere(h: Harness) -> No
     model = h.http.get("/ui/models/shelf-ranker").text
     assert "overridden to promote" in model and "“planned relaunch”" in model
     assert "operator override" in model  # baseline history
-    assert "verdict.override" in model   # operator actions
+    assert "verdict.override" in model  # operator actions
     assert "overridden → promote" in h.http.get("/ui/").text
 
 
@@ -185,38 +195,51 @@ def test_override_form_to_decision_in_force_is_409(h: Harness) -> None:
 def test_rollback_form_moves_baseline_and_is_audited(h: Harness) -> None:
     page = h.http.get("/ui/models/shelf-ranker").text
     assert '<option value="s02">' in page  # earlier baselines offered
-    response = h.http.post("/ui/models/shelf-ranker/baseline",
-                           data={"snapshot": "s02", "reason": "s03 mis-joined",
-                                 "csrf_token": csrf_of(page)}, follow_redirects=False)
+    response = h.http.post(
+        "/ui/models/shelf-ranker/baseline",
+        data={"snapshot": "s02", "reason": "s03 mis-joined", "csrf_token": csrf_of(page)},
+        follow_redirects=False,
+    )
     assert response.status_code == 303
     assert h.http.get("/v1/models/shelf-ranker").json()["baseline"] == "s02"
     entry = h.http.get("/v1/audit", params={"model": "shelf-ranker", "limit": 1}).json()["data"][0]
     assert (entry["action"], entry["before"], entry["after"], entry["reason"]) == (
-        "baseline.rollback", {"baseline": "s03"}, {"baseline": "s02"}, "s03 mis-joined")
+        "baseline.rollback",
+        {"baseline": "s03"},
+        {"baseline": "s02"},
+        "s03 mis-joined",
+    )
     html = h.http.get(response.headers["location"]).text
     assert "Baseline changed" in html and "rolled back" in html
 
 
-@pytest.mark.parametrize("snapshot, reason, status, text", [
-    ("s02", "", 422, "a reason is required"),
-    ("nope", "why not", 404, "has no snapshot"),
-    ("s03", "again", 409, "already the baseline"),
-])
-def test_rollback_form_errors(h: Harness, snapshot: str, reason: str, status: int,
-                              text: str) -> None:
+@pytest.mark.parametrize(
+    "snapshot, reason, status, text",
+    [
+        ("s02", "", 422, "a reason is required"),
+        ("nope", "why not", 404, "has no snapshot"),
+        ("s03", "again", 409, "already the baseline"),
+    ],
+)
+def test_rollback_form_errors(
+    h: Harness, snapshot: str, reason: str, status: int, text: str
+) -> None:
     page = h.http.get("/ui/models/shelf-ranker").text
-    response = h.http.post("/ui/models/shelf-ranker/baseline",
-                           data={"snapshot": snapshot, "reason": reason,
-                                 "csrf_token": csrf_of(page)})
+    response = h.http.post(
+        "/ui/models/shelf-ranker/baseline",
+        data={"snapshot": snapshot, "reason": reason, "csrf_token": csrf_of(page)},
+    )
     assert response.status_code == status and text in response.text
     assert h.http.get("/v1/models/shelf-ranker").json()["baseline"] == "s03"
 
 
 def test_rollback_from_verdict_page_returns_there(h: Harness) -> None:
     page = h.http.get("/ui/models/shelf-ranker/snapshots/s02").text
-    response = h.http.post("/ui/models/shelf-ranker/baseline",
-                           data={"snapshot": "s02", "reason": "back", "back": "snapshot",
-                                 "csrf_token": csrf_of(page)}, follow_redirects=False)
+    response = h.http.post(
+        "/ui/models/shelf-ranker/baseline",
+        data={"snapshot": "s02", "reason": "back", "back": "snapshot", "csrf_token": csrf_of(page)},
+        follow_redirects=False,
+    )
     assert response.headers["location"] == "/ui/models/shelf-ranker/snapshots/s02?done=rollback"
     assert "serving now" in h.http.get(response.headers["location"]).text
 
@@ -232,8 +255,10 @@ def test_viewer_sees_pages_without_forms_and_cannot_post(h: Harness) -> None:
         assert "cannot change the baseline" in h.http.get("/ui/models/shelf-ranker").text
         denied = override_form(h, token=token)
         assert denied.status_code == 403
-        rollback = h.http.post("/ui/models/shelf-ranker/baseline",
-                               data={"snapshot": "s02", "reason": "x", "csrf_token": token})
+        rollback = h.http.post(
+            "/ui/models/shelf-ranker/baseline",
+            data={"snapshot": "s02", "reason": "x", "csrf_token": token},
+        )
         assert rollback.status_code == 403
     finally:
         h.app.dependency_overrides.clear()
@@ -262,8 +287,9 @@ def test_pages_use_no_script_and_no_outside_resources(h: Harness) -> None:
 
 def test_pages_render_without_sample_baseline_or_policy(h: Harness) -> None:
     # a model no policy matches: held fail-closed with no findings and no baseline
-    posted = h.http.post("/v1/models/pocket-list/snapshots",
-                         json={"key": "p1", "metrics": {"auc": 0.7}})
+    posted = h.http.post(
+        "/v1/models/pocket-list/snapshots", json={"key": "p1", "metrics": {"auc": 0.7}}
+    )
     assert posted.status_code == 201 and posted.json()["decision"] == "hold"
     page = h.http.get("/ui/models/pocket-list/snapshots/p1")
     assert page.status_code == 200

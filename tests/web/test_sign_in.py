@@ -33,13 +33,17 @@ def browser(api: Api) -> TestClient:
 def sign_in(client: TestClient, token: str, next_url: str = "/ui/") -> Any:
     page = client.get("/ui/sign-in", params={"next": next_url})
     assert page.status_code == 200
-    return client.post("/ui/sign-in", data={"token": token, "next": next_url,
-                                            "csrf_token": form_token(page.text)})
+    return client.post(
+        "/ui/sign-in", data={"token": token, "next": next_url, "csrf_token": form_token(page.text)}
+    )
 
 
 def cookie_header(response: Any, name: str) -> str:
-    found = [v for k, v in response.headers.multi_items()
-             if k == "set-cookie" and v.startswith(name + "=")]
+    found = [
+        v
+        for k, v in response.headers.multi_items()
+        if k == "set-cookie" and v.startswith(name + "=")
+    ]
     assert found, f"no {name} cookie set"
     return found[0]
 
@@ -73,7 +77,8 @@ def test_wrong_form_token_or_token_is_refused(site: Api) -> None:
     client.get("/ui/sign-in")
     forged = client.post("/ui/sign-in", data={"token": site.admin, "csrf_token": "guess"})
     assert forged.status_code == 403 and "tidegate_session" not in forged.headers.get(
-        "set-cookie", "")
+        "set-cookie", ""
+    )
     bad = sign_in(client, "tg_" + "x" * 43)
     assert bad.status_code == 401 and "not valid" in bad.text
     # a page cannot be signed into from another site's form: no form cookie, no sign-in
@@ -82,8 +87,9 @@ def test_wrong_form_token_or_token_is_refused(site: Api) -> None:
     assert refused.status_code == 403
 
 
-@pytest.mark.parametrize("target", ["https://elsewhere.example/", "//elsewhere.example/",
-                                    "/v1/tokens", "/ui\\..\\x"])
+@pytest.mark.parametrize(
+    "target", ["https://elsewhere.example/", "//elsewhere.example/", "/v1/tokens", "/ui\\..\\x"]
+)
 def test_sign_in_never_redirects_away(site: Api, target: str) -> None:
     done = sign_in(browser(site), site.admin, target)
     assert done.status_code == 303 and done.headers["location"] == "/ui/"
@@ -94,9 +100,10 @@ def test_roles_and_scope_apply_to_pages_and_forms(site: Api) -> None:
     sign_in(viewer, site.token("viewer"))
     page = viewer.get("/ui/models/shelf-ranker/snapshots/s1")
     assert page.status_code == 200 and "/override" not in page.text
-    denied = viewer.post("/ui/models/shelf-ranker/baseline",
-                         data={"snapshot": "s1", "reason": "x",
-                               "csrf_token": form_token(page.text)})
+    denied = viewer.post(
+        "/ui/models/shelf-ranker/baseline",
+        data={"snapshot": "s1", "reason": "x", "csrf_token": form_token(page.text)},
+    )
     assert denied.status_code == 403 and "<html" in denied.text.lower()
 
     scoped = browser(site)
@@ -109,15 +116,23 @@ def test_roles_and_scope_apply_to_pages_and_forms(site: Api) -> None:
     page = operator.get("/ui/models/shelf-ranker")
     token = form_token(page.text)
     assert token != form_token(viewer.get("/ui/models/shelf-ranker").text)  # per session
-    missing = operator.post("/ui/models/shelf-ranker/baseline",
-                            data={"snapshot": "s1", "reason": "roll back"})
+    missing = operator.post(
+        "/ui/models/shelf-ranker/baseline", data={"snapshot": "s1", "reason": "roll back"}
+    )
     assert missing.status_code == 403 and "csrf_failed" in missing.text
-    other_session = operator.post("/ui/models/shelf-ranker/baseline",
-                                  data={"snapshot": "s1", "reason": "roll back",
-                                        "csrf_token": form_token(viewer.get("/ui/").text)})
+    other_session = operator.post(
+        "/ui/models/shelf-ranker/baseline",
+        data={
+            "snapshot": "s1",
+            "reason": "roll back",
+            "csrf_token": form_token(viewer.get("/ui/").text),
+        },
+    )
     assert other_session.status_code == 403
-    moved = operator.post("/ui/models/shelf-ranker/baseline",
-                          data={"snapshot": "s1", "reason": "roll back", "csrf_token": token})
+    moved = operator.post(
+        "/ui/models/shelf-ranker/baseline",
+        data={"snapshot": "s1", "reason": "roll back", "csrf_token": token},
+    )
     assert moved.status_code == 303
     model = site.client.get("/v1/models/shelf-ranker", headers=site.headers()).json()
     assert model["baseline"] == "s1"

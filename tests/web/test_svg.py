@@ -16,8 +16,9 @@ def parse(markup: str) -> ET.Element:
 
 
 def bars(root: ET.Element, css: str) -> list[ET.Element]:
-    group = next(g for g in root.iter("{http://www.w3.org/2000/svg}g")
-                 if css in g.get("class", "").split())
+    group = next(
+        g for g in root.iter("{http://www.w3.org/2000/svg}g") if css in g.get("class", "").split()
+    )
     return group.findall("s:rect", NS)
 
 
@@ -27,14 +28,17 @@ def test_scale_maps_domain_ends_to_range_ends() -> None:
     assert svg.Scale(5.0, 5.0, 0.0, 10.0)(5.0) == 5.0  # a zero-width domain maps to the middle
 
 
-@pytest.mark.parametrize("lo, hi, count, expected", [
-    # round steps of 1, 2 or 5 times a power of ten (the usual axis rule; common practice)
-    (0.0, 1.0, 5, [0.0, 0.2, 0.4, 0.6, 0.8, 1.0]),
-    (0.0, 0.08, 4, [0.0, 0.02, 0.04, 0.06, 0.08]),
-    (0.13, 0.91, 4, [0.2, 0.4, 0.6, 0.8]),
-    (-3.0, 7.0, 5, [-2.0, 0.0, 2.0, 4.0, 6.0]),
-    (2.0, 2.0, 5, [2.0]),
-])
+@pytest.mark.parametrize(
+    "lo, hi, count, expected",
+    [
+        # round steps of 1, 2 or 5 times a power of ten (the usual axis rule; common practice)
+        (0.0, 1.0, 5, [0.0, 0.2, 0.4, 0.6, 0.8, 1.0]),
+        (0.0, 0.08, 4, [0.0, 0.02, 0.04, 0.06, 0.08]),
+        (0.13, 0.91, 4, [0.2, 0.4, 0.6, 0.8]),
+        (-3.0, 7.0, 5, [-2.0, 0.0, 2.0, 4.0, 6.0]),
+        (2.0, 2.0, 5, [2.0]),
+    ],
+)
 def test_nice_ticks(lo: float, hi: float, count: int, expected: list[float]) -> None:
     assert svg.nice_ticks(lo, hi, count) == pytest.approx(expected)
 
@@ -44,8 +48,9 @@ def test_histogram_bar_heights_are_proportional_to_shares() -> None:
     cand = svg.Series("candidate", [0.1, 0.2, 0.4, 0.3], "tg-cand", 0.6)
     base = svg.Series("baseline", [0.4, 0.3, 0.2, 0.1], "tg-base", 0.4)
     root = parse(svg.histogram_overlay(edges, [base, cand], width=500, height=300))
-    heights = {css: [float(b.get("height")) for b in bars(root, css)]
-               for css in ("tg-cand", "tg-base")}
+    heights = {
+        css: [float(b.get("height")) for b in bars(root, css)] for css in ("tg-cand", "tg-base")
+    }
     # the tallest share of either series (0.4) fills the plot; everything else in proportion
     tallest = max(heights["tg-cand"] + heights["tg-base"])
     assert heights["tg-cand"] == pytest.approx([tallest * s / 0.4 for s in cand.shares], abs=0.11)
@@ -61,12 +66,16 @@ def test_histogram_bar_heights_are_proportional_to_shares() -> None:
 
 def test_histogram_bins_have_equal_width_and_means_are_marked() -> None:
     edges = [0.0, 0.1, 0.2, 0.3]
-    root = parse(svg.histogram_overlay(edges, [svg.Series("c", [0.2, 0.5, 0.3], "tg-cand", 0.15)],
-                                       width=400, height=200))
+    root = parse(
+        svg.histogram_overlay(
+            edges, [svg.Series("c", [0.2, 0.5, 0.3], "tg-cand", 0.15)], width=400, height=200
+        )
+    )
     widths = {float(b.get("width")) for b in bars(root, "tg-cand")}
     assert len(widths) == 1
-    mean_line = next(e for e in root.iter("{http://www.w3.org/2000/svg}line")
-                     if "tg-mean" in e.get("class", ""))
+    mean_line = next(
+        e for e in root.iter("{http://www.w3.org/2000/svg}line") if "tg-mean" in e.get("class", "")
+    )
     rects = bars(root, "tg-cand")
     # the mean 0.15 is half way through the second bin
     second_left = float(rects[1].get("x"))
@@ -89,8 +98,11 @@ def test_text_is_escaped() -> None:
 
 
 def test_trend_places_values_and_limits_by_value() -> None:
-    points = [svg.TrendPoint("t1", 0.0, 1.0), svg.TrendPoint("t2", 2.0, 1.0, breach=True),
-              svg.TrendPoint("t3", 1.0, 1.0)]
+    points = [
+        svg.TrendPoint("t1", 0.0, 1.0),
+        svg.TrendPoint("t2", 2.0, 1.0, breach=True),
+        svg.TrendPoint("t3", 1.0, 1.0),
+    ]
     root = parse(svg.trend_chart(points, title="psi", width=400, height=200))
     dots = root.findall(".//s:circle", NS)
     ys = [float(d.get("cy")) for d in dots]
@@ -98,18 +110,24 @@ def test_trend_places_values_and_limits_by_value() -> None:
     assert ys[0] > ys[2] > ys[1]
     assert ys[0] - ys[2] == pytest.approx(ys[2] - ys[1], abs=0.2)
     assert "tg-breach" in dots[1].get("class")
-    limit = next(p for p in root.iter("{http://www.w3.org/2000/svg}path")
-                 if p.get("class") == "tg-limit")
+    limit = next(
+        p for p in root.iter("{http://www.w3.org/2000/svg}path") if p.get("class") == "tg-limit"
+    )
     # the limit 1.0 is drawn at the same height as the value 1.0
     assert f" {svg.r(ys[2])}H" in limit.get("d")
 
 
 def test_trend_breaks_line_at_missing_values() -> None:
-    points = [svg.TrendPoint("a", 1.0), svg.TrendPoint("b", None), svg.TrendPoint("c", 2.0),
-              svg.TrendPoint("d", 3.0)]
+    points = [
+        svg.TrendPoint("a", 1.0),
+        svg.TrendPoint("b", None),
+        svg.TrendPoint("c", 2.0),
+        svg.TrendPoint("d", 3.0),
+    ]
     root = parse(svg.trend_chart(points, title="x"))
-    line = next(p for p in root.iter("{http://www.w3.org/2000/svg}path")
-                if p.get("class") == "tg-line")
+    line = next(
+        p for p in root.iter("{http://www.w3.org/2000/svg}path") if p.get("class") == "tg-line"
+    )
     assert line.get("d").count("M") == 2 and line.get("d").count("L") == 1
 
 
@@ -117,8 +135,9 @@ def test_trend_puts_a_far_outlier_off_the_scale() -> None:
     values = [0.01, 0.012, 0.011, 0.009, 0.01, 0.013, 0.012, 0.01, 0.011, 0.01, 7.8]
     points = [svg.TrendPoint(str(i), v, 0.1) for i, v in enumerate(values)]
     root = parse(svg.trend_chart(points, title="psi"))
-    off = [p for p in root.iter("{http://www.w3.org/2000/svg}path")
-           if "tg-off" in p.get("class", "")]
+    off = [
+        p for p in root.iter("{http://www.w3.org/2000/svg}path") if "tg-off" in p.get("class", "")
+    ]
     assert len(off) == 1
     assert "off the scale" in off[0].find("s:title", NS).text
     lo, hi, clipped = svg.core_range(values, [0.1])
@@ -130,12 +149,18 @@ def test_core_range_keeps_everything_without_outliers() -> None:
 
 
 def test_decision_strip_one_cell_per_verdict_coloured_by_decision() -> None:
-    items = [svg.StripItem("promote"), svg.StripItem("hold", overridden=True, href="/ui/x"),
-             svg.StripItem("hold")]
+    items = [
+        svg.StripItem("promote"),
+        svg.StripItem("hold", overridden=True, href="/ui/x"),
+        svg.StripItem("hold"),
+    ]
     root = parse(svg.decision_strip(items, cell=10, gap=2))
     cells = list(root.iter("{http://www.w3.org/2000/svg}rect"))
     assert [c.get("class") for c in cells] == [
-        "tg-cell tg-promote", "tg-cell tg-hold tg-overridden", "tg-cell tg-hold"]
+        "tg-cell tg-promote",
+        "tg-cell tg-hold tg-overridden",
+        "tg-cell tg-hold",
+    ]
     assert [float(c.get("x")) for c in cells] == [0.0, 12.0, 24.0]
     assert len(root.findall(".//s:a", NS)) == 1
 

@@ -19,8 +19,12 @@ router = APIRouter(prefix="/v1/audit", tags=["audit"])
 RESPONSES: dict[int | str, dict[str, Any]] = {403: dict(ERRORS[404]), 422: dict(ERRORS[422])}
 
 
-@router.get("", response_model=AuditList, responses=RESPONSES,
-            summary="Audit entries newest first: who, what, when, before and after")
+@router.get(
+    "",
+    response_model=AuditList,
+    responses=RESPONSES,
+    summary="Audit entries newest first: who, what, when, before and after",
+)
 def list_audit(
     db: DbDep,
     principal: ReaderDep,
@@ -29,8 +33,9 @@ def list_audit(
     cursor: Annotated[str | None, Query(max_length=100)] = None,
 ) -> dict[str, object]:
     if not principal.allows("read", model):
-        raise Forbidden(f"{principal.name} may not read the audit log"
-                        + (f" of {model!r}" if model else ""))
+        raise Forbidden(
+            f"{principal.name} may not read the audit log" + (f" of {model!r}" if model else "")
+        )
     before_id = None
     if cursor is not None:
         try:
@@ -43,9 +48,11 @@ def list_audit(
     rows = rows[:limit]
     # entries of models outside the caller's scope are left out of the page; entries about no
     # model (tokens made and revoked) only for callers whose scope is every model
-    data = [views.audit_view(r) for r in rows
-            if (principal.allows("read", r.model) if r.model is not None
-                else "*" in principal.models)]
+    data = [
+        views.audit_view(r)
+        for r in rows
+        if (principal.allows("read", r.model) if r.model is not None else "*" in principal.models)
+    ]
     return {
         "data": data,
         "count": len(data),

@@ -17,8 +17,12 @@ def healthz() -> dict[str, object]:
     return {"status": "ok", "detail": {}}
 
 
-@router.get("/readyz", response_model=Health, responses={503: {"model": Health}},
-            summary="The database answers and is at the current revision")
+@router.get(
+    "/readyz",
+    response_model=Health,
+    responses={503: {"model": Health}},
+    summary="The database answers and is at the current revision",
+)
 def readyz(request: Request) -> object:
     settings = request.app.state.settings
     engine = request.app.state.engine
@@ -26,10 +30,16 @@ def readyz(request: Request) -> object:
         current = store_db.current_revision(engine)
         head = store_db.head_revision(settings)
     except Exception as exc:  # the database does not answer
-        return JSONResponse(status_code=503, content={
-            "status": "not_ready", "detail": {"database": f"{type(exc).__name__}: {exc}"}})
+        return JSONResponse(
+            status_code=503,
+            content={"status": "not_ready", "detail": {"database": f"{type(exc).__name__}: {exc}"}},
+        )
     if current != head:
-        return JSONResponse(status_code=503, content={
-            "status": "not_ready", "detail": {"revision": current, "needs": head}})
-    return {"status": "ok", "detail": {"revision": current,
-                                       "policies": len(request.app.state.policies)}}
+        return JSONResponse(
+            status_code=503,
+            content={"status": "not_ready", "detail": {"revision": current, "needs": head}},
+        )
+    return {
+        "status": "ok",
+        "detail": {"revision": current, "policies": len(request.app.state.policies)},
+    }

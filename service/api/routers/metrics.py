@@ -16,8 +16,10 @@ CONTENT_TYPE = "text/plain; version=0.0.4; charset=utf-8"
 @router.get(
     "/metrics",
     response_class=PlainTextResponse,
-    responses={200: {"content": {"text/plain": {"schema": {"type": "string"}}}},
-               **{k: v for k, v in ERRORS.items() if k in (401, 403)}},
+    responses={
+        200: {"content": {"text/plain": {"schema": {"type": "string"}}}},
+        **{k: v for k, v in ERRORS.items() if k in (401, 403)},
+    },
     summary="Metrics in the Prometheus text format (series of models outside the token's scope "
     "are left out)",
 )

@@ -29,8 +29,12 @@ from service.store import repo
 router = APIRouter(prefix="/v1/models", tags=["models"])
 
 
-@router.get("", response_model=ModelList, responses=ERRORS,
-            summary="Every model with its baseline and last verdict")
+@router.get(
+    "",
+    response_model=ModelList,
+    responses=ERRORS,
+    summary="Every model with its baseline and last verdict",
+)
 def list_models(
     db: DbDep, clock: ClockDep, policies: PoliciesDep, principal: ReaderDep
 ) -> dict[str, object]:
@@ -46,7 +50,10 @@ def list_models(
 
 @router.get("/{model}", response_model=ModelPublic, responses=ERRORS, summary="One model")
 def get_model(
-    db: DbDep, clock: ClockDep, policies: PoliciesDep, principal: ReaderDep,
+    db: DbDep,
+    clock: ClockDep,
+    policies: PoliciesDep,
+    principal: ReaderDep,
     model: str = ModelPath,
 ) -> dict[str, object]:
     with db.read() as session:
@@ -80,13 +87,20 @@ def list_verdicts(
             raise InvalidInput(str(exc), field="query.cursor") from None
     for name, value in (("since", since), ("until", until)):
         if value is not None and value.tzinfo is None:
-            raise InvalidInput("give a time zone (e.g. 2026-12-01T02:45:00Z)", field=f"query.{name}")
+            raise InvalidInput(
+                "give a time zone (e.g. 2026-12-01T02:45:00Z)", field=f"query.{name}"
+            )
     with db.read() as session:
         row = repo.get_model(session, name=model)
         if row is None:
             raise NotFound(f"no model {model!r}", field="model")
         rows, next_id = repo.list_verdicts(
-            session, model_id=row.id, decision=decision, since=since, until=until, limit=limit,
+            session,
+            model_id=row.id,
+            decision=decision,
+            since=since,
+            until=until,
+            limit=limit,
             before_id=before_id,
         )
         overrides = repo.overrides_for(session, verdict_ids=[v.id for v, _ in rows])
@@ -105,15 +119,22 @@ def list_verdicts(
     summary="Set the baseline by hand: promote a snapshot or roll back to an earlier one",
 )
 def set_baseline(
-    body: BaselineSet, db: DbDep, clock: ClockDep, principal: OperatorDep,
+    body: BaselineSet,
+    db: DbDep,
+    clock: ClockDep,
+    principal: OperatorDep,
     model: str = ModelPath,
 ) -> dict[str, object]:
     if not principal.allows("operate", model):
         raise Forbidden(f"{principal.name} may not set the baseline of {model!r}")
     with db.transaction() as session:
         _, snapshot, previous = intake.set_baseline_by_hand(
-            session, model_name=model, key=body.snapshot, reason=body.reason,
-            actor=principal.name, now=clock(),
+            session,
+            model_name=model,
+            key=body.snapshot,
+            reason=body.reason,
+            actor=principal.name,
+            now=clock(),
         )
         cause = repo.promotions(session, model_id=snapshot.model_id, limit=1)[0].cause
     return {
@@ -151,7 +172,10 @@ def replay_model(
     # long replay must not hold up the trainers' posts)
     with db.read() as session:
         result = replay(
-            session, model_name=model, policy=policy, limit=body.limit,
+            session,
+            model_name=model,
+            policy=policy,
+            limit=body.limit,
             history_limit=settings.history_limit,
         )
     return result.to_dict()
@@ -164,13 +188,20 @@ def replay_model(
     summary="Pin a snapshot as the model's reference (the anchor against slow creep), or unpin",
 )
 def set_reference(
-    body: ReferenceSet, db: DbDep, clock: ClockDep, principal: OperatorDep,
+    body: ReferenceSet,
+    db: DbDep,
+    clock: ClockDep,
+    principal: OperatorDep,
     model: str = ModelPath,
 ) -> dict[str, object]:
     with db.transaction() as session:
         pinned, previous = intake.set_reference_by_hand(
-            session, model_name=model, key=body.snapshot, reason=body.reason,
-            actor=principal.name, now=clock(),
+            session,
+            model_name=model,
+            key=body.snapshot,
+            reason=body.reason,
+            actor=principal.name,
+            now=clock(),
         )
     return {
         "model": model,

@@ -25,16 +25,23 @@ RESPONSES[403] = dict(ERRORS[404])
     summary="Override a verdict's decision (audited; the verdict itself is kept as it was)",
 )
 def override(
-    verdict_id: Annotated[int, Path(ge=1, le=MAX_ID)], body: OverrideCreate, db: DbDep,
-    clock: ClockDep, principal: OperatorDep,
+    verdict_id: Annotated[int, Path(ge=1, le=MAX_ID)],
+    body: OverrideCreate,
+    db: DbDep,
+    clock: ClockDep,
+    principal: OperatorDep,
 ) -> dict[str, object]:
     with db.transaction() as session:
         _, model = operate.verdict_with_model(session, verdict_id=verdict_id)
         if not principal.allows("operate", model.name):
             raise Forbidden(f"{principal.name} may not override verdicts of {model.name!r}")
         outcome = operate.override_verdict(
-            session, verdict_id=verdict_id, decision=body.decision, reason=body.reason,
-            actor=principal.name, now=clock(),
+            session,
+            verdict_id=verdict_id,
+            decision=body.decision,
+            reason=body.reason,
+            actor=principal.name,
+            now=clock(),
         )
         return {
             "override": views.override_view(outcome.override),

@@ -22,13 +22,18 @@ def visible_policies(policies: list[Policy], principal: Principal, db: DbDep) ->
         names = [m.name for m in repo.list_model_rows(session) if principal.allows("read", m.name)]
     in_force = {id(p) for p in (select_policy(policies, name) for name in names) if p is not None}
     return [
-        p for p in policies
+        p
+        for p in policies
         if id(p) in in_force or any(principal.allows("read", pattern) for pattern in p.models)
     ]
 
 
-@router.get("", response_model=PolicyList, responses=ERRORS,
-            summary="The policies in force, with their digests")
+@router.get(
+    "",
+    response_model=PolicyList,
+    responses=ERRORS,
+    summary="The policies in force, with their digests",
+)
 def list_policies(policies: PoliciesDep, principal: ReaderDep, db: DbDep) -> dict[str, object]:
     data = [
         {

@@ -22,15 +22,19 @@ MODEL_NAME = r"^[A-Za-z0-9][A-Za-z0-9._-]{0,99}$"
 ModelPath = Path(description="Model name: letters, digits, . _ - (at most 100).", max_length=100)
 ERRORS: dict[int | str, dict[str, Any]] = {
     401: {"model": ErrorResponse, "description": "No valid API token"},
-    403: {"model": ErrorResponse, "description": "The token's role or model scope does not "
-          "allow this"},
+    403: {
+        "model": ErrorResponse,
+        "description": "The token's role or model scope does not allow this",
+    },
     404: {"model": ErrorResponse},
     409: {"model": ErrorResponse},
     413: {"model": ErrorResponse},
     415: {"model": ErrorResponse},
     422: {"model": ErrorResponse},
-    503: {"model": ErrorResponse, "description": "The database did not complete the request "
-          "(nothing was stored; retry)"},
+    503: {
+        "model": ErrorResponse,
+        "description": "The database did not complete the request (nothing was stored; retry)",
+    },
 }
 
 
@@ -52,8 +56,10 @@ def content_digest(body: SnapshotCreate) -> str:
     "",
     response_model=VerdictPublic,
     status_code=201,
-    responses={200: {"model": VerdictPublic, "description": "Retry of a stored snapshot"},
-               **ERRORS},
+    responses={
+        200: {"model": VerdictPublic, "description": "Retry of a stored snapshot"},
+        **ERRORS,
+    },
     summary="Post a snapshot; the response is its verdict",
 )
 def post_snapshot(
@@ -94,14 +100,18 @@ def post_snapshot(
     if result.created:
         metrics = getattr(request.app.state, "metrics", None)
         if metrics is not None:
-            metrics.verdict(model=model, decision=str(detail["decision"]),
-                            seconds=float(str(detail["duration_ms"])) / 1000.0)
+            metrics.verdict(
+                model=model,
+                decision=str(detail["decision"]),
+                seconds=float(str(detail["duration_ms"])) / 1000.0,
+            )
     response.status_code = 201 if result.created else 200
     return detail
 
 
-@router.get("/{key}", response_model=SnapshotPublic, responses=ERRORS,
-            summary="One snapshot by its key")
+@router.get(
+    "/{key}", response_model=SnapshotPublic, responses=ERRORS, summary="One snapshot by its key"
+)
 def get_snapshot(
     db: DbDep, principal: ReaderDep, key: str, model: str = ModelPath
 ) -> dict[str, object]:

@@ -18,8 +18,9 @@ from service.views import iso
 
 router = APIRouter(prefix="/v1/tokens", tags=["tokens"])
 
-Pattern = Annotated[str, StringConstraints(min_length=1, max_length=100,
-                                           pattern=r"^[A-Za-z0-9*?._\-\[\]!]+$")]
+Pattern = Annotated[
+    str, StringConstraints(min_length=1, max_length=100, pattern=r"^[A-Za-z0-9*?._\-\[\]!]+$")
+]
 
 
 class TokenCreate(BaseModel):
@@ -29,11 +30,14 @@ class TokenCreate(BaseModel):
 
     role: Literal["viewer", "trainer", "operator", "admin"] = Field(description="What it may do.")
     models: list[Pattern] = Field(
-        default_factory=lambda: ["*"], min_length=1, max_length=50,
+        default_factory=lambda: ["*"],
+        min_length=1,
+        max_length=50,
         description="Shell-style model patterns in scope (default: every model).",
     )
-    label: Annotated[str, StringConstraints(max_length=200, pattern=r"^[^\x00-\x1f\x7f]*$")] = \
+    label: Annotated[str, StringConstraints(max_length=200, pattern=r"^[^\x00-\x1f\x7f]*$")] = (
         Field("", description="A name for the audit log (default: role-id).")
+    )
 
 
 class TokenPublic(BaseModel):
@@ -77,21 +81,33 @@ def list_tokens(db: DbDep, principal: AdminDep) -> dict[str, object]:
     return {"data": data, "count": len(data)}
 
 
-@router.post("", response_model=TokenCreated, status_code=201, responses=ERRORS,
-             summary="Make a token (its text is in this answer only)")
+@router.post(
+    "",
+    response_model=TokenCreated,
+    status_code=201,
+    responses=ERRORS,
+    summary="Make a token (its text is in this answer only)",
+)
 def create_token(
     body: TokenCreate, db: DbDep, clock: ClockDep, principal: AdminDep
 ) -> dict[str, object]:
     now = clock()
     try:
         with db.transaction() as session:
-            made = tokens.create_token(session, role=body.role, models=body.models,
-                                       label=body.label, now=now)
-            repo.add_audit(session, actor=principal.name, action="token.create", model=None,
-                           target=made.prefix, before=None,
-                           after={"role": made.role, "models": list(made.models),
-                                  "label": made.label},
-                           reason="", now=now)
+            made = tokens.create_token(
+                session, role=body.role, models=body.models, label=body.label, now=now
+            )
+            repo.add_audit(
+                session,
+                actor=principal.name,
+                action="token.create",
+                model=None,
+                target=made.prefix,
+                before=None,
+                after={"role": made.role, "models": list(made.models), "label": made.label},
+                reason="",
+                now=now,
+            )
             row = session.get(TokenRow, made.id)
             assert row is not None
             view = token_view(row)
@@ -100,10 +116,13 @@ def create_token(
     return {**view, "token": made.secret}
 
 
-@router.delete("/{token_id}", response_model=TokenPublic, responses=ERRORS,
-               summary="Revoke a token")
+@router.delete(
+    "/{token_id}", response_model=TokenPublic, responses=ERRORS, summary="Revoke a token"
+)
 def revoke_token(
-    db: DbDep, clock: ClockDep, principal: AdminDep,
+    db: DbDep,
+    clock: ClockDep,
+    principal: AdminDep,
     token_id: Annotated[int, Path(ge=1, le=MAX_ID)],
 ) -> dict[str, object]:
     now = clock()
@@ -112,7 +131,15 @@ def revoke_token(
         if row is None:
             raise NotFound(f"no token {token_id}", field="token_id")
         if tokens.revoke_token(session, token=row, now=now):
-            repo.add_audit(session, actor=principal.name, action="token.revoke", model=None,
-                           target=row.prefix, before={"revoked": False},
-                           after={"revoked": True}, reason="", now=now)
+            repo.add_audit(
+                session,
+                actor=principal.name,
+                action="token.revoke",
+                model=None,
+                target=row.prefix,
+                before={"revoked": False},
+                after={"revoked": True},
+                reason="",
+                now=now,
+            )
         return token_view(row)

@@ -17,8 +17,12 @@ from service.store.tables import ModelRow
 router = APIRouter(prefix="/v1/verdicts", tags=["verdicts"])
 
 
-@router.get("/{verdict_id}", response_model=VerdictPublic, responses=ERRORS,
-            summary="One verdict with all findings")
+@router.get(
+    "/{verdict_id}",
+    response_model=VerdictPublic,
+    responses=ERRORS,
+    summary="One verdict with all findings",
+)
 def get_verdict(
     verdict_id: Annotated[int, Path(ge=1, le=MAX_ID)], db: DbDep, principal: ReaderDep
 ) -> dict[str, object]:

@@ -106,4 +106,6 @@ def run_metric(config: MetricConfig, ctx: CheckContext) -> list[Finding]:
         text = f"{name} {cand:.4g} (no {config.against} value to compare)"
     else:
         text = f"{name} {cand:.4g} vs {config.against} {other:.4g} (change {change:+.4g})"
-    return [finding("ok", text, value=change, limit=limit, baseline_value=other, candidate_value=cand)]
+    return [
+        finding("ok", text, value=change, limit=limit, baseline_value=other, candidate_value=cand)
+    ]
