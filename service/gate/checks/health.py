@@ -80,7 +80,10 @@ def health_findings(rules: SampleRules, candidate: Snapshot) -> list[Finding]:
             limit=rules.max_out_of_range_share,
         )
     )
-    std = float(np.std(finite))
+    with np.errstate(over="ignore", invalid="ignore"):
+        std = float(np.std(finite))
+    if not np.isfinite(std):  # values near the float limit: the spread overflows, not collapsed
+        std = float(np.finfo(np.float64).max)
     bad = std <= rules.min_std
     findings.append(
         _finding(
