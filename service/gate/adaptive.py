@@ -29,7 +29,7 @@ from collections.abc import Sequence
 from datetime import datetime
 from typing import Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, model_validator
+from pydantic import BaseModel, ConfigDict, Field
 
 from service.gate.history import select_history
 from service.gate.types import Finding, HistoryEntry
@@ -77,8 +77,8 @@ class AdaptiveRules(BaseModel):
         False, description="Let snapshots promoted by overriding a hold count as healthy."
     )
 
-    @model_validator(mode="after")
-    def _consistent(self) -> AdaptiveRules:
+    def model_post_init(self, context: Any, /) -> None:
+        """Cross-key rules, run once the keys themselves are valid."""
         if self.min_history > self.window:
             raise ValueError("min_history must not exceed window")
         if (
@@ -87,7 +87,6 @@ class AdaptiveRules(BaseModel):
             and self.min_limit > self.max_limit
         ):
             raise ValueError("min_limit must not exceed max_limit")
-        return self
 
 
 @dataclasses.dataclass(frozen=True)

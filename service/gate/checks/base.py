@@ -22,7 +22,7 @@ from dataclasses import dataclass
 from datetime import datetime
 from typing import TYPE_CHECKING, Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, model_validator
+from pydantic import BaseModel, ConfigDict, Field
 
 from service.gate.adaptive import AdaptiveRules
 from service.gate.types import Finding, HistoryEntry, Snapshot
@@ -47,14 +47,19 @@ class CheckConfig(BaseModel):
         None, description="Learn the limit from earlier healthy promotions (see adaptive keys)."
     )
 
-    @model_validator(mode="after")
-    def _adaptive_against_baseline(self) -> CheckConfig:
+    def model_post_init(self, context: Any, /) -> None:
+        """Run the cross-key rules once the keys themselves are valid (pydantic reports a
+        ValueError raised here as a validation error of the check)."""
+        self.consistency()
+
+    def consistency(self) -> None:
+        """Raise ValueError when keys contradict each other. A kind with rules of its own
+        overrides this and calls ``super().consistency()`` first."""
         if self.adaptive is not None and self.against != "baseline":
             raise ValueError(
                 "adaptive limits are learned from consecutive promotions, so they apply to "
                 "checks against the baseline only; a reference check keeps its static limit"
             )
-        return self
 
     def adaptive_side(self) -> Literal["upper", "lower"]:
         """Which way a value is bad, for a learned limit: the ``adaptive.side`` key, else the

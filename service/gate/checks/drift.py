@@ -20,7 +20,7 @@ from dataclasses import dataclass, field
 from typing import Any, Literal
 
 import numpy as np
-from pydantic import Field, field_validator, model_validator
+from pydantic import Field, field_validator
 
 from service.gate.checks.base import CheckContext, format_p, register, skipped
 from service.gate.checks.segments import ALL, CorrectedSegmentKeys, Unit, matching_rows, split
@@ -54,13 +54,12 @@ class DriftConfig(CorrectedSegmentKeys):
             raise ValueError(f"unknown drift statistic {value!r} (known: {known})")
         return value
 
-    @model_validator(mode="after")
-    def _limits(self) -> DriftConfig:
+    def consistency(self) -> None:
+        super().consistency()
         if self.max is None and self.alpha is None:
             raise ValueError("set max (effect size), alpha (significance), or both")
         if self.alpha is not None and not DRIFT_STATISTICS[self.statistic].has_pvalue:
             raise ValueError(f"statistic {self.statistic!r} has no p-value: use max, not alpha")
-        return self
 
 
 @dataclass(frozen=True)

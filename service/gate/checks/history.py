@@ -19,7 +19,7 @@ from __future__ import annotations
 import math
 from typing import Literal
 
-from pydantic import Field, model_validator
+from pydantic import Field
 
 from service.gate.checks.base import CheckConfig, CheckContext, register, skipped
 from service.gate.history import format_age, select_history
@@ -49,8 +49,8 @@ class TrainingVolumeConfig(CheckConfig):
         False, description="A candidate that does not report rows_trained is a breach."
     )
 
-    @model_validator(mode="after")
-    def _consistent(self) -> TrainingVolumeConfig:
+    def consistency(self) -> None:
+        super().consistency()
         if self.min_history > self.window:
             raise ValueError("min_history must not exceed window")
         if (
@@ -63,7 +63,6 @@ class TrainingVolumeConfig(CheckConfig):
             raise ValueError("training-volume reads the history, not the reference")
         if self.adaptive is not None:
             raise ValueError("training-volume learns from history already; drop 'adaptive'")
-        return self
 
 
 @register("training-volume", TrainingVolumeConfig, family="history", needs_other=False)
@@ -153,13 +152,12 @@ class BaselineAgeConfig(CheckConfig):
         description="Age of the baseline's data (trained_until) or since it became the baseline.",
     )
 
-    @model_validator(mode="after")
-    def _baseline_only(self) -> BaselineAgeConfig:
+    def consistency(self) -> None:
+        super().consistency()
         if self.against != "baseline":
             raise ValueError("baseline-age measures the baseline, not the reference")
         if self.adaptive is not None:
             raise ValueError("baseline-age has a fixed max_age_hours; drop 'adaptive'")
-        return self
 
 
 @register("baseline-age", BaselineAgeConfig, family="history")

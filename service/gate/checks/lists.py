@@ -23,7 +23,7 @@ from __future__ import annotations
 
 from typing import Literal
 
-from pydantic import Field, model_validator
+from pydantic import Field
 
 from service.gate.checks.base import CheckConfig, CheckContext, register, skipped
 from service.gate.types import Finding, Snapshot
@@ -79,8 +79,8 @@ class ListsConfig(CheckConfig):
         "popularity.", min_length=1, description="Metric name prefix of supplied popularity."
     )
 
-    @model_validator(mode="after")
-    def _limits_fit(self) -> ListsConfig:
+    def consistency(self) -> None:
+        super().consistency()
         if self.statistic in OVERLAP_STATISTICS:
             if self.min is None:
                 raise ValueError(f"statistic {self.statistic!r} needs 'min'")
@@ -94,7 +94,6 @@ class ListsConfig(CheckConfig):
                 )
             if self.min is not None:
                 raise ValueError(f"'min' goes with jaccard or rbo, not {self.statistic!r}")
-        return self
 
     def bad_side(self) -> Literal["upper", "lower"]:
         return "lower" if self.statistic in OVERLAP_STATISTICS else "upper"

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from typing import Literal
 
-from pydantic import Field, model_validator
+from pydantic import Field
 
 from service.gate.checks.base import CheckConfig, CheckContext, register
 from service.gate.types import Finding
@@ -28,8 +28,8 @@ class MetricConfig(CheckConfig):
     ceiling: float | None = Field(None, description="Highest acceptable value (direction=lower).")
     required: bool = Field(True, description="A candidate that does not report it is a breach.")
 
-    @model_validator(mode="after")
-    def _consistent(self) -> MetricConfig:
+    def consistency(self) -> None:
+        super().consistency()
         if self.floor is not None and self.direction != "higher":
             raise ValueError("floor goes with direction = 'higher'")
         if self.ceiling is not None and self.direction != "lower":
@@ -41,7 +41,6 @@ class MetricConfig(CheckConfig):
             and self.ceiling is None
         ):
             raise ValueError("set at least one of max_drop, max_relative_drop, floor, ceiling")
-        return self
 
 
 @register("metric", MetricConfig, family="quality", needs_other=False)

@@ -20,7 +20,7 @@ from __future__ import annotations
 from typing import Any, Literal
 
 import numpy as np
-from pydantic import Field, model_validator
+from pydantic import Field
 
 from service.gate.checks.base import CheckContext, register, skipped
 from service.gate.checks.memo import codes_of, finite_rows, order_of, take
@@ -50,8 +50,8 @@ class PairedConfig(SegmentKeys):
         0.95, ge=0.5, lt=1, description="Two-sided confidence of the interval."
     )
 
-    @model_validator(mode="after")
-    def _consistent(self) -> PairedConfig:
+    def consistency(self) -> None:
+        super().consistency()
         if self.against != "baseline":
             raise ValueError("paired checks compare with the baseline (against = 'baseline')")
         if self.statistic == "spearman":
@@ -64,7 +64,6 @@ class PairedConfig(SegmentKeys):
                 raise ValueError("churn needs exactly one of 'threshold' or 'top_k'")
         elif self.threshold is not None or self.top_k is not None:
             raise ValueError("'threshold' and 'top_k' go with statistic = 'churn'")
-        return self
 
     def bad_side(self) -> Literal["upper", "lower"]:
         """A low rank correlation is bad; a high change or churn is bad (learned limits)."""

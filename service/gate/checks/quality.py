@@ -33,7 +33,7 @@ from dataclasses import dataclass
 from typing import Any, Literal
 
 import numpy as np
-from pydantic import Field, model_validator
+from pydantic import Field
 
 from service.gate.checks.base import CheckContext, register, skipped
 from service.gate.checks.comparisons import (
@@ -109,8 +109,8 @@ class QualityConfig(CorrectedSegmentKeys):
     )
     resamples: int = Field(1000, ge=10, le=100_000, description="Bootstrap resamples.")
 
-    @model_validator(mode="after")
-    def _consistent(self) -> QualityConfig:
+    def consistency(self) -> None:
+        super().consistency()
         if self.rule in ("non-inferiority", "limit") and self.margin is None:
             raise ValueError(f"rule {self.rule!r} needs a margin")
         if self.pairing == "paired" and self.against != "baseline":
@@ -120,7 +120,6 @@ class QualityConfig(CorrectedSegmentKeys):
                 "quality decides on a confidence interval against its margin, not on a limit "
                 "learned from history; drop 'adaptive'"
             )
-        return self
 
 
 @dataclass(frozen=True)
