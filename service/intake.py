@@ -65,47 +65,6 @@ def resolve_reference(
     return session.get(SnapshotRow, row.snapshot_id) if row is not None else None
 
 
-def set_reference_by_hand(
-    session: Session,
-    *,
-    model_name: str,
-    key: str | None,
-    reason: str,
-    actor: str,
-    now: datetime,
-) -> tuple[SnapshotRow | None, SnapshotRow | None]:
-    """Pin snapshot *key* as the model's reference, or unpin (*key* None); audited.
-
-    Returns (new pinned snapshot, previously pinned snapshot).
-    """
-    from service.errors import InvalidInput, NotFound
-
-    if not reason.strip():
-        raise InvalidInput("a reason is required", field="reason")
-    model = repo.get_model(session, name=model_name, lock=True)
-    if model is None:
-        raise NotFound(f"no model {model_name!r}", field="model")
-    snapshot = None
-    if key is not None:
-        snapshot = repo.get_snapshot(session, model_id=model.id, key=key)
-        if snapshot is None:
-            raise NotFound(f"model {model_name!r} has no snapshot {key!r}", field="snapshot")
-    previous = repo.snapshot_by_id(session, snapshot_id=model.reference_id)
-    repo.set_reference(session, model=model, snapshot=snapshot)
-    repo.add_audit(
-        session,
-        actor=actor,
-        action="reference.pin" if snapshot is not None else "reference.unpin",
-        model=model_name,
-        target=key,
-        before={"reference": previous.key if previous else None},
-        after={"reference": key},
-        reason=reason,
-        now=now,
-    )
-    return snapshot, previous
-
-
 def submit(
     session: Session,
     *,
@@ -182,7 +141,9 @@ def submit(
                 limit=max(history_limit, policy.history_depth() if policy else 0),
             ),
             baseline_since=repo.utc(model.baseline_since),
-            known_keys=repo.known_keys(session, model_id=model.id),
+            known_keys=repo.known_keys(
+                session, model_id=model.id, among=[post.parent] if post.parent else []
+            ),
         )
         verdict = evaluate(inp, policy)
     except Exception as exc:  # fail closed
@@ -228,54 +189,3 @@ def submit(
             now=now,
         )
     return Submitted(model, snapshot_row, verdict_row, created=True)
-
-
-def set_baseline_by_hand(
-    session: Session,
-    *,
-    model_name: str,
-    key: str,
-    reason: str,
-    actor: str,
-    now: datetime,
-    cause: str = "manual",
-) -> tuple[ModelRow, SnapshotRow, SnapshotRow | None]:
-    """Promote or roll back by hand: make snapshot *key* the baseline; audited."""
-    from service.errors import InvalidInput, NotFound
-
-    if not reason.strip():
-        raise InvalidInput("a reason is required", field="reason")
-    model = repo.get_model(session, name=model_name, lock=True)
-    if model is None:
-        raise NotFound(f"no model {model_name!r}", field="model")
-    snapshot = repo.get_snapshot(session, model_id=model.id, key=key)
-    if snapshot is None:
-        raise NotFound(f"model {model_name!r} has no snapshot {key!r}", field="snapshot")
-    previous = repo.snapshot_by_id(session, snapshot_id=model.baseline_id)
-    if previous is not None and previous.id == snapshot.id:
-        raise Conflict(f"{key!r} is already the baseline of {model_name!r}", field="snapshot")
-    if cause == "manual" and previous is not None and previous.id != snapshot.id:
-        if previous.created_at is not None and snapshot.created_at < previous.created_at:
-            cause = "rollback"
-    repo.set_baseline(
-        session,
-        model=model,
-        snapshot=snapshot,
-        cause=cause,
-        actor=actor,
-        reason=reason,
-        verdict_id=None,
-        now=now,
-    )
-    repo.add_audit(
-        session,
-        actor=actor,
-        action=f"baseline.{cause}",
-        model=model_name,
-        target=key,
-        before={"baseline": previous.key if previous else None},
-        after={"baseline": key},
-        reason=reason,
-        now=now,
-    )
-    return model, snapshot, previous

@@ -1,4 +1,5 @@
-"""Operator actions: override a verdict, roll the baseline back. Each is audited.
+"""Operator actions: override a verdict, set or roll back the baseline, pin the reference.
+Each is audited.
 
 Override rules (README, "Overrides"):
 
@@ -194,19 +195,89 @@ def _baseline_target(
     )
 
 
+def _locked_model(session: Session, *, model_name: str) -> ModelRow:
+    model = repo.get_model(session, name=model_name, lock=True)
+    if model is None:
+        raise NotFound(f"no model {model_name!r}", field="model")
+    return model
+
+
+def _stored_snapshot(session: Session, *, model: ModelRow, key: str) -> SnapshotRow:
+    snapshot = repo.get_snapshot(session, model_id=model.id, key=key)
+    if snapshot is None:
+        raise NotFound(f"model {model.name!r} has no snapshot {key!r}", field="snapshot")
+    return snapshot
+
+
 def rollback(
     session: Session, *, model_name: str, key: str, reason: str, actor: str, now: datetime
 ) -> tuple[ModelRow, SnapshotRow, SnapshotRow | None, str]:
-    """Make stored snapshot *key* the baseline by hand (audited); returns the model, the new and
-    the previous baseline, and the promotion's cause (``rollback`` when *key* is older than
-    what served, ``manual`` otherwise)."""
-    from service import intake
-
-    model, snapshot, previous = intake.set_baseline_by_hand(
-        session, model_name=model_name, key=key, reason=clean_reason(reason), actor=actor, now=now
+    """Make stored snapshot *key* the baseline by hand (promote by hand, or roll back);
+    audited. Returns the model, the new and the previous baseline, and the promotion's cause:
+    ``rollback`` when *key* is older than what served, ``manual`` otherwise."""
+    reason = clean_reason(reason)
+    model = _locked_model(session, model_name=model_name)
+    snapshot = _stored_snapshot(session, model=model, key=key)
+    previous = repo.snapshot_by_id(session, snapshot_id=model.baseline_id)
+    if previous is not None and previous.id == snapshot.id:
+        raise Conflict(f"{key!r} is already the baseline of {model_name!r}", field="snapshot")
+    cause = "manual"
+    if previous is not None and snapshot.created_at < previous.created_at:
+        cause = "rollback"
+    repo.set_baseline(
+        session,
+        model=model,
+        snapshot=snapshot,
+        cause=cause,
+        actor=actor,
+        reason=reason,
+        verdict_id=None,
+        now=now,
     )
-    cause = repo.promotions(session, model_id=model.id, limit=1)[0].cause
+    repo.add_audit(
+        session,
+        actor=actor,
+        action=f"baseline.{cause}",
+        model=model_name,
+        target=key,
+        before={"baseline": previous.key if previous else None},
+        after={"baseline": key},
+        reason=reason,
+        now=now,
+    )
     return model, snapshot, previous, cause
+
+
+def pin_reference(
+    session: Session,
+    *,
+    model_name: str,
+    key: str | None,
+    reason: str,
+    actor: str,
+    now: datetime,
+) -> tuple[SnapshotRow | None, SnapshotRow | None]:
+    """Pin snapshot *key* as the model's reference, or unpin (*key* None); audited.
+
+    Returns (new pinned snapshot, previously pinned snapshot).
+    """
+    reason = clean_reason(reason)
+    model = _locked_model(session, model_name=model_name)
+    snapshot = _stored_snapshot(session, model=model, key=key) if key is not None else None
+    previous = repo.snapshot_by_id(session, snapshot_id=model.reference_id)
+    repo.set_reference(session, model=model, snapshot=snapshot)
+    repo.add_audit(
+        session,
+        actor=actor,
+        action="reference.pin" if snapshot is not None else "reference.unpin",
+        model=model_name,
+        target=key,
+        before={"reference": previous.key if previous else None},
+        after={"reference": key},
+        reason=reason,
+        now=now,
+    )
+    return snapshot, previous
 
 
 def preview_override(session: Session, *, verdict: VerdictRow, decision: str) -> str:

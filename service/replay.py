@@ -22,6 +22,7 @@ from service.gate.evaluate import evaluate, failed_verdict
 from service.gate.policy import Policy
 from service.gate.types import GateInput
 from service.store import repo
+from service.views import iso
 
 
 @dataclass
@@ -86,11 +87,15 @@ def replay(
             )
         return cache[snapshot_id]
 
-    for verdict, snap in pairs:
+    # One history read for the whole window: the replayed verdicts are the newest len(pairs),
+    # so the history before the j-th oldest of them starts right after it, newest first.
+    window = repo.history(session, model_id=model.id, limit=depth + len(pairs))
+    for j, (verdict, snap) in enumerate(pairs):
         candidate = gate_snapshot(snap.id)
         baseline = gate_snapshot(verdict.baseline_id)
         try:
-            earlier = repo.history(session, model_id=model.id, limit=depth, before_id=verdict.id)
+            start = len(pairs) - j
+            earlier = window[start : start + depth]
             inp = GateInput(
                 candidate=candidate,
                 baseline=baseline,
@@ -98,7 +103,9 @@ def replay(
                 now=repo.utc(verdict.created_at),  # type: ignore[arg-type]
                 history=earlier,
                 baseline_since=None,
-                known_keys=None,
+                known_keys=repo.known_keys(
+                    session, model_id=model.id, among=[snap.parent_key] if snap.parent_key else []
+                ),
             )
             outcome = evaluate(inp, policy)
         except Exception as exc:  # fail closed, as in a live post
@@ -108,7 +115,7 @@ def replay(
             {
                 "verdict_id": verdict.id,
                 "snapshot": snap.key,
-                "created_at": repo.utc(verdict.created_at).isoformat().replace("+00:00", "Z"),  # type: ignore[union-attr]
+                "created_at": iso(verdict.created_at),
                 "baseline": baseline.key if baseline else None,
                 "decision": verdict.decision,
                 "effective_decision": effective,

@@ -178,7 +178,8 @@ class GateInput:
     reference: Snapshot | None = None
     history: tuple[HistoryEntry, ...] = ()
     baseline_since: datetime | None = None
-    #: Known snapshot keys of the model (for the parent check), None when not loaded.
+    #: Stored snapshot keys of the model among those the gate needs (the candidate's parent),
+    #: None when not loaded.
     known_keys: frozenset[str] | None = None
 
 

@@ -12,13 +12,13 @@ from dataclasses import dataclass
 from datetime import UTC, datetime
 from typing import Any
 
-from sqlalchemy import Select, func, select
+from sqlalchemy import Select, func, or_, select
 from sqlalchemy.dialects.postgresql import insert as pg_insert
 from sqlalchemy.dialects.sqlite import insert as sqlite_insert
 from sqlalchemy.orm import Session
 
 from service.gate.policy import Policy
-from service.gate.types import Finding, HistoryEntry, Sample, SampleSummary, Snapshot, Verdict
+from service.gate.types import HistoryEntry, Sample, SampleSummary, Snapshot, Verdict
 from service.store import codec
 from service.store.tables import (
     AuditRow,
@@ -53,19 +53,23 @@ def get_model(session: Session, *, name: str, lock: bool = False) -> ModelRow | 
     return session.scalars(stmt).one_or_none()
 
 
-def get_or_create_model(session: Session, *, name: str, now: datetime) -> ModelRow:
-    """The model called *name*, created if new, locked for the rest of the transaction."""
+def _insert_if_absent(session: Session, table: type[Any], key: str, values: dict[str, Any]) -> None:
+    """Insert a row unless one with the same unique *key* exists; safe when two transactions
+    race (``INSERT ... ON CONFLICT DO NOTHING`` on PostgreSQL and SQLite)."""
     dialect = session.get_bind().dialect.name
     if dialect in {"postgresql", "sqlite"}:
         insert = pg_insert if dialect == "postgresql" else sqlite_insert
-        session.execute(
-            insert(ModelRow)
-            .values(name=name, created_at=now)
-            .on_conflict_do_nothing(index_elements=["name"])
-        )
-    elif get_model(session, name=name) is None:  # pragma: no cover - other dialects
-        session.add(ModelRow(name=name, created_at=now))
+        session.execute(insert(table).values(**values).on_conflict_do_nothing(index_elements=[key]))
+        return
+    column = getattr(table, key)  # pragma: no cover - other dialects
+    if session.scalars(select(column).where(column == values[key])).first() is None:
+        session.add(table(**values))
         session.flush()
+
+
+def get_or_create_model(session: Session, *, name: str, now: datetime) -> ModelRow:
+    """The model called *name*, created if new, locked for the rest of the transaction."""
+    _insert_if_absent(session, ModelRow, "name", {"name": name, "created_at": now})
     model = get_model(session, name=name, lock=True)
     assert model is not None
     return model
@@ -164,19 +168,18 @@ def to_gate_snapshot(
     )
 
 
-def known_keys(session: Session, *, model_id: int) -> frozenset[str]:
+def known_keys(session: Session, *, model_id: int, among: Sequence[str]) -> frozenset[str]:
+    """Which of the keys *among* are stored snapshots of the model (one indexed query; the
+    model's whole key list grows without bound and is never needed)."""
+    if not among:
+        return frozenset()
     return frozenset(
-        session.scalars(select(SnapshotRow.key).where(SnapshotRow.model_id == model_id)).all()
+        session.scalars(
+            select(SnapshotRow.key).where(
+                SnapshotRow.model_id == model_id, SnapshotRow.key.in_(list(among))
+            )
+        ).all()
     )
-
-
-def list_snapshots(session: Session, *, model_id: int, limit: int = 100) -> Sequence[SnapshotRow]:
-    return session.scalars(
-        select(SnapshotRow)
-        .where(SnapshotRow.model_id == model_id)
-        .order_by(SnapshotRow.id.desc())
-        .limit(limit)
-    ).all()
 
 
 # --- policies -----------------------------------------------------------------------------
@@ -185,25 +188,12 @@ def list_snapshots(session: Session, *, model_id: int, limit: int = 100) -> Sequ
 def record_policy(session: Session, *, policy: Policy, now: datetime) -> None:
     """Keep the exact text of *policy* by digest (once). Posts for different models do not
     lock each other, so two may record the same policy at once: insert-if-absent."""
-    dialect = session.get_bind().dialect.name
-    if dialect in {"postgresql", "sqlite"}:
-        insert = pg_insert if dialect == "postgresql" else sqlite_insert
-        session.execute(
-            insert(PolicyRow)
-            .values(name=policy.name, digest=policy.digest, text=policy.text, first_seen_at=now)
-            .on_conflict_do_nothing(index_elements=["digest"])
-        )
-        return
-    exists = session.scalars(select(PolicyRow.id).where(PolicyRow.digest == policy.digest)).first()
-    if exists is None:  # pragma: no cover - other dialects
-        session.add(
-            PolicyRow(name=policy.name, digest=policy.digest, text=policy.text, first_seen_at=now)
-        )
-        session.flush()
-
-
-def policy_text(session: Session, *, digest: str) -> PolicyRow | None:
-    return session.scalars(select(PolicyRow).where(PolicyRow.digest == digest)).first()
+    _insert_if_absent(
+        session,
+        PolicyRow,
+        "digest",
+        {"name": policy.name, "digest": policy.digest, "text": policy.text, "first_seen_at": now},
+    )
 
 
 # --- verdicts -----------------------------------------------------------------------------
@@ -426,12 +416,17 @@ class _Promoted:
     rolled_back: set[int]
 
 
-def _promotion_state(session: Session, *, model_id: int) -> _Promoted:
+def _promotion_state(session: Session, *, model_id: int, snapshot_ids: Sequence[int]) -> _Promoted:
+    """Which of *snapshot_ids* were ever promoted, and which a rollback replaced."""
     ever: set[int] = set()
     rolled_back: set[int] = set()
+    if not snapshot_ids:
+        return _Promoted(ever, rolled_back)
+    ids = list(snapshot_ids)
     for snapshot_id, previous_id, cause in session.execute(
         select(PromotionRow.snapshot_id, PromotionRow.previous_id, PromotionRow.cause).where(
-            PromotionRow.model_id == model_id
+            PromotionRow.model_id == model_id,
+            or_(PromotionRow.snapshot_id.in_(ids), PromotionRow.previous_id.in_(ids)),
         )
     ):
         ever.add(snapshot_id)
@@ -462,7 +457,7 @@ def history(
         stmt = stmt.where(VerdictRow.id < before_id)
     rows = session.execute(stmt.order_by(VerdictRow.id.desc()).limit(limit)).all()
     overrides = overrides_for(session, verdict_ids=[v.id for v, _ in rows])
-    state = _promotion_state(session, model_id=model_id)
+    state = _promotion_state(session, model_id=model_id, snapshot_ids=[s.id for _, s in rows])
     entries = []
     for verdict, snap in rows:
         effective = effective_decision(verdict, overrides[verdict.id])
@@ -536,7 +531,3 @@ def list_audit(
     if before_id is not None:
         stmt = stmt.where(AuditRow.id < before_id)
     return session.scalars(stmt.order_by(AuditRow.id.desc()).limit(limit)).all()
-
-
-def findings_of(verdict: VerdictRow) -> list[Finding]:
-    return [Finding.from_dict(f) for f in verdict.findings]

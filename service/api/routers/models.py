@@ -7,7 +7,7 @@ from typing import Annotated, Literal
 
 from fastapi import APIRouter, Query
 
-from service import intake, views
+from service import operate, views
 from service.api.deps import ClockDep, DbDep, OperatorDep, PoliciesDep, ReaderDep, SettingsDep
 from service.api.routers.snapshots import ERRORS, ModelPath
 from service.api.schemas import (
@@ -21,7 +21,7 @@ from service.api.schemas import (
     ReplayRequest,
     VerdictList,
 )
-from service.errors import Forbidden, InvalidInput, NotFound
+from service.errors import InvalidInput, NotFound
 from service.gate.policy import PolicyError, parse_policy, select_policy
 from service.replay import replay
 from service.store import repo
@@ -125,10 +125,8 @@ def set_baseline(
     principal: OperatorDep,
     model: str = ModelPath,
 ) -> dict[str, object]:
-    if not principal.allows("operate", model):
-        raise Forbidden(f"{principal.name} may not set the baseline of {model!r}")
     with db.transaction() as session:
-        _, snapshot, previous = intake.set_baseline_by_hand(
+        _, snapshot, previous, cause = operate.rollback(
             session,
             model_name=model,
             key=body.snapshot,
@@ -136,7 +134,6 @@ def set_baseline(
             actor=principal.name,
             now=clock(),
         )
-        cause = repo.promotions(session, model_id=snapshot.model_id, limit=1)[0].cause
     return {
         "model": model,
         "baseline": snapshot.key,
@@ -195,7 +192,7 @@ def set_reference(
     model: str = ModelPath,
 ) -> dict[str, object]:
     with db.transaction() as session:
-        pinned, previous = intake.set_reference_by_hand(
+        pinned, previous = operate.pin_reference(
             session,
             model_name=model,
             key=body.snapshot,

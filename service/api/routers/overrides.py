@@ -10,7 +10,6 @@ from service import operate, views
 from service.api.deps import ClockDep, DbDep, OperatorDep, ReaderDep
 from service.api.routers.snapshots import ERRORS
 from service.api.schemas import MAX_ID, EvidencePublic, OverrideCreate, OverrideResult
-from service.errors import Forbidden
 
 router = APIRouter(prefix="/v1/verdicts", tags=["verdicts"])
 RESPONSES: dict[int | str, dict[str, Any]] = {code: dict(v) for code, v in ERRORS.items()}
@@ -33,8 +32,7 @@ def override(
 ) -> dict[str, object]:
     with db.transaction() as session:
         _, model = operate.verdict_with_model(session, verdict_id=verdict_id)
-        if not principal.allows("operate", model.name):
-            raise Forbidden(f"{principal.name} may not override verdicts of {model.name!r}")
+        principal.require("operate", model.name)
         outcome = operate.override_verdict(
             session,
             verdict_id=verdict_id,
@@ -68,6 +66,5 @@ def evidence(
 ) -> dict[str, object]:
     with db.read() as session:
         verdict, model = operate.verdict_with_model(session, verdict_id=verdict_id)
-        if not principal.allows("read", model.name):
-            raise Forbidden(f"{principal.name} may not read {model.name!r}")
+        principal.require("read", model.name)
         return views.verdict_evidence(session, verdict=verdict, bins=bins)
