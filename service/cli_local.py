@@ -112,7 +112,7 @@ def _store() -> tuple[Any, Any]:
 def cmd_token(args: argparse.Namespace) -> int:
     """Tokens are managed on the database itself (no service call): this is how the first admin
     token is made. The token text is printed once and never stored."""
-    from service.store import db, repo, tokens
+    from service.store import db, tokens
 
     _, factory = _store()
     now = datetime.now(UTC)
@@ -121,17 +121,11 @@ def cmd_token(args: argparse.Namespace) -> int:
         try:
             with db.transaction(factory) as session:
                 made = tokens.create_token(
-                    session, role=args.role, models=patterns, label=args.label or "", now=now
-                )
-                repo.add_audit(
                     session,
+                    role=args.role,
+                    models=patterns,
+                    label=args.label or "",
                     actor="cli",
-                    action="token.create",
-                    model=None,
-                    target=made.prefix,
-                    before=None,
-                    after={"role": made.role, "models": list(made.models), "label": made.label},
-                    reason="",
                     now=now,
                 )
         except ValueError as exc:
@@ -159,7 +153,7 @@ def cmd_token(args: argparse.Namespace) -> int:
     if args.token_action == "list":
         with db.read_transaction(factory) as session:
             rows = tokens.list_tokens(session, include_revoked=args.all)
-            from service.api.routers.tokens import token_view
+            from service.views import token_view
 
             views: list[dict[str, Any]] = [token_view(row) for row in rows]
         if args.json:
@@ -186,19 +180,7 @@ def cmd_token(args: argparse.Namespace) -> int:
         if row is None:
             print(f"error: no token {args.ref!r} (give its id, prefix or label)", file=sys.stderr)
             return EXIT_ERROR
-        changed = tokens.revoke_token(session, token=row, now=now)
-        if changed:
-            repo.add_audit(
-                session,
-                actor="cli",
-                action="token.revoke",
-                model=None,
-                target=row.prefix,
-                before={"revoked": False},
-                after={"revoked": True},
-                reason="",
-                now=now,
-            )
+        changed = tokens.revoke_token(session, token=row, actor="cli", now=now)
         label = f"{row.id} ({row.label})"
     print(f"token {label} {'revoked' if changed else 'was already revoked'}")
     return EXIT_OK

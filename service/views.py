@@ -21,6 +21,7 @@ from service.store.tables import (
     OverrideRow,
     PromotionRow,
     SnapshotRow,
+    TokenRow,
     VerdictRow,
 )
 
@@ -265,4 +266,18 @@ def verdict_evidence(session: Session, *, verdict: VerdictRow, bins: int = 30) -
         "serving": serving.key if serving else None,
         "candidate_serving": serving is not None and serving.id == snapshot.id,
         "promotions": promoted,
+    }
+
+
+def token_view(row: TokenRow) -> dict[str, object]:
+    """What listings show of a token (never its digest)."""
+    return {
+        "id": row.id,
+        "prefix": row.prefix,
+        "label": row.label,
+        "role": row.role,
+        "models": list(row.models or []),
+        "created_at": iso(row.created_at),
+        "revoked_at": iso(row.revoked_at),
+        "last_used_at": iso(row.last_used_at),
     }

@@ -185,7 +185,7 @@ def make_token(
     try:
         with store_db.transaction(store_db.make_sessionmaker(engine)) as session:
             return tokens.create_token(
-                session, role=role, models=models, label=label, now=datetime.now(UTC)
+                session, role=role, models=models, label=label, actor="cli", now=datetime.now(UTC)
             )
     finally:
         engine.dispose()

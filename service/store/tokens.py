@@ -15,7 +15,6 @@ short-circuits on the first differing byte.
 
 from __future__ import annotations
 
-import fnmatch
 import hashlib
 import hmac
 import re
@@ -27,6 +26,7 @@ from datetime import datetime, timedelta
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
+from service.store import repo
 from service.store.tables import TokenRow
 
 TOKEN_PREFIX = "tg_"
@@ -81,9 +81,10 @@ def check_models(models: Sequence[str]) -> tuple[str, ...]:
 
 
 def create_token(
-    session: Session, *, role: str, models: Sequence[str], label: str, now: datetime
+    session: Session, *, role: str, models: Sequence[str], label: str, actor: str, now: datetime
 ) -> NewToken:
-    """Make a token; returns it with its secret (the only time the secret exists)."""
+    """Make a token (audited as done by *actor*); returns it with its secret (the only time the
+    secret exists)."""
     if role not in ROLES:
         raise ValueError(f"role {role!r}: one of {', '.join(ROLES)}")
     scope = check_models(models)
@@ -101,6 +102,17 @@ def create_token(
     if not row.label:
         row.label = f"{role}-{row.id}"
         session.flush()
+    repo.add_audit(
+        session,
+        actor=actor,
+        action="token.create",
+        model=None,
+        target=row.prefix,
+        before=None,
+        after={"role": role, "models": list(scope), "label": row.label},
+        reason="",
+        now=now,
+    )
     return NewToken(row.id, secret, row.prefix, role, scope, row.label)
 
 
@@ -138,15 +150,21 @@ def resolve_ref(session: Session, *, ref: str) -> TokenRow | None:
     return live[0] if live else (rows[0] if rows else None)
 
 
-def revoke_token(session: Session, *, token: TokenRow, now: datetime) -> bool:
-    """Revoke *token*; False when it already was."""
+def revoke_token(session: Session, *, token: TokenRow, actor: str, now: datetime) -> bool:
+    """Revoke *token* (audited as done by *actor*); False when it already was."""
     if token.revoked_at is not None:
         return False
     token.revoked_at = now
     session.flush()
+    repo.add_audit(
+        session,
+        actor=actor,
+        action="token.revoke",
+        model=None,
+        target=token.prefix,
+        before={"revoked": False},
+        after={"revoked": True},
+        reason="",
+        now=now,
+    )
     return True
-
-
-def scope_allows(models: Sequence[str], model: str) -> bool:
-    """Does a scope of shell-style patterns cover *model*?"""
-    return any(fnmatch.fnmatchcase(model, pattern) for pattern in models)

@@ -12,9 +12,9 @@ from service.api.deps import AdminDep, ClockDep, DbDep
 from service.api.routers.snapshots import ERRORS
 from service.api.schemas import MAX_ID
 from service.errors import InvalidInput, NotFound
-from service.store import repo, tokens
+from service.store import tokens
 from service.store.tables import TokenRow
-from service.views import iso
+from service.views import token_view
 
 router = APIRouter(prefix="/v1/tokens", tags=["tokens"])
 
@@ -60,20 +60,6 @@ class TokenList(BaseModel):
     count: int
 
 
-def token_view(row: TokenRow) -> dict[str, object]:
-    """What listings show of a token (never its digest)."""
-    return {
-        "id": row.id,
-        "prefix": row.prefix,
-        "label": row.label,
-        "role": row.role,
-        "models": list(row.models or []),
-        "created_at": iso(row.created_at),
-        "revoked_at": iso(row.revoked_at),
-        "last_used_at": iso(row.last_used_at),
-    }
-
-
 @router.get("", response_model=TokenList, responses=ERRORS, summary="The live API tokens")
 def list_tokens(db: DbDep, principal: AdminDep) -> dict[str, object]:
     with db.read() as session:
@@ -95,17 +81,11 @@ def create_token(
     try:
         with db.transaction() as session:
             made = tokens.create_token(
-                session, role=body.role, models=body.models, label=body.label, now=now
-            )
-            repo.add_audit(
                 session,
+                role=body.role,
+                models=body.models,
+                label=body.label,
                 actor=principal.name,
-                action="token.create",
-                model=None,
-                target=made.prefix,
-                before=None,
-                after={"role": made.role, "models": list(made.models), "label": made.label},
-                reason="",
                 now=now,
             )
             row = session.get(TokenRow, made.id)
@@ -130,16 +110,5 @@ def revoke_token(
         row = session.get(TokenRow, token_id)
         if row is None:
             raise NotFound(f"no token {token_id}", field="token_id")
-        if tokens.revoke_token(session, token=row, now=now):
-            repo.add_audit(
-                session,
-                actor=principal.name,
-                action="token.revoke",
-                model=None,
-                target=row.prefix,
-                before={"revoked": False},
-                after={"revoked": True},
-                reason="",
-                now=now,
-            )
+        tokens.revoke_token(session, token=row, actor=principal.name, now=now)
         return token_view(row)
