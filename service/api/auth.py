@@ -116,7 +116,8 @@ def principal_for(request: Request) -> Principal:
     return principal
 
 
-def _header(scope: Scope, name: bytes) -> str | None:
+def header(scope: Scope, name: bytes) -> str | None:
+    """The first value of header *name* (lower-case bytes) in an ASGI scope, or None."""
     for key, value in scope.get("headers", []):
         if key.lower() == name:
             return bytes(value).decode("latin-1")
@@ -136,7 +137,7 @@ class TokenGate:
         if self.settings.auth == "open" or not path.startswith(PROTECTED_PREFIXES):
             await self.app(scope, receive, send)
             return
-        authorization = _header(scope, b"authorization")
+        authorization = header(scope, b"authorization")
         try:
             principal = await anyio.to_thread.run_sync(
                 lambda: authenticate(

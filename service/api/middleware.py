@@ -17,7 +17,7 @@ from typing import Any
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service import logs
-from service.api.auth import ASGIApp, Message, Receive, Scope, Send
+from service.api.auth import ASGIApp, Message, Receive, Scope, Send, header
 from service.metrics import Metrics
 
 log = logging.getLogger("tidegate.http")
@@ -71,10 +71,7 @@ class RequestContext:
         if scope["type"] != "http":
             await self.app(scope, receive, send)
             return
-        given = ""
-        for key, value in scope.get("headers", []):
-            if key.lower() == b"x-request-id":
-                given = bytes(value).decode("latin-1").strip()
+        given = (header(scope, b"x-request-id") or "").strip()
         rid = given if REQUEST_ID.match(given) else uuid.uuid4().hex
         token = logs.request_id.set(rid)
         started = time.perf_counter()
@@ -162,21 +159,21 @@ class BodyLimit:
         if scope["type"] != "http":
             await self.app(scope, receive, send)
             return
-        for key, value in scope.get("headers", []):
-            if key.lower() == b"content-length":
-                text = bytes(value).decode("latin-1").strip()
-                if not text.isdigit():
-                    await send_error(send, 400, "bad_request", "Content-Length is not a number")
-                    return
-                if int(text) > self.limit:
-                    await send_error(
-                        send,
-                        413,
-                        "payload_too_large",
-                        f"request body larger than {self.limit} bytes",
-                        [(b"connection", b"close")],
-                    )
-                    return
+        declared = header(scope, b"content-length")
+        if declared is not None:
+            text = declared.strip()
+            if not text.isdigit():
+                await send_error(send, 400, "bad_request", "Content-Length is not a number")
+                return
+            if int(text) > self.limit:
+                await send_error(
+                    send,
+                    413,
+                    "payload_too_large",
+                    f"request body larger than {self.limit} bytes",
+                    [(b"connection", b"close")],
+                )
+                return
         seen = 0
         started = False
 
