@@ -65,18 +65,28 @@ def create_app(
     )
     app.state.settings = settings
     app.state.engine = engine
+    # The migration scripts do not change while the service runs: read the head once.
+    app.state.head_revision = store_db.head_revision(settings)
     app.state.database = Database(store_db.make_sessionmaker(engine))
     app.state.policies = loaded
     app.state.clock = clock
     app.state.metrics = Metrics()
     install_error_handlers(app)
-    for module in (snapshots, models, verdicts, overrides, audit, policy_routes, health):
-        app.include_router(module.router)
-    for module in (token_routes, metrics_routes):
-        app.include_router(module.router)
-    app.include_router(web_routes.router)
-    app.include_router(web_routes.root)
-    app.include_router(web_auth.router)
+    for router in (
+        snapshots.router,
+        models.router,
+        verdicts.router,
+        overrides.router,
+        audit.router,
+        policy_routes.router,
+        health.router,
+        token_routes.router,
+        metrics_routes.router,
+        web_routes.router,
+        web_routes.root,
+        web_auth.router,
+    ):
+        app.include_router(router)
     web_auth.install(app)
     # Added last = outermost: RequestContext -> BodyLimit -> TokenGate -> routes.
     app.add_middleware(TokenGate, settings=settings, database=app.state.database)

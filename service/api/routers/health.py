@@ -24,11 +24,10 @@ def healthz() -> dict[str, object]:
     summary="The database answers and is at the current revision",
 )
 def readyz(request: Request) -> object:
-    settings = request.app.state.settings
     engine = request.app.state.engine
+    head = request.app.state.head_revision
     try:
         current = store_db.current_revision(engine)
-        head = store_db.head_revision(settings)
     except Exception as exc:  # the database does not answer
         return JSONResponse(
             status_code=503,
