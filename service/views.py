@@ -86,10 +86,9 @@ def verdict_detail(session: Session, *, verdict: VerdictRow) -> dict[str, Any]:
 
 def snapshot_view(session: Session, *, model: ModelRow, snapshot: SnapshotRow) -> dict[str, Any]:
     verdict = repo.verdict_for_snapshot(session, snapshot_id=snapshot.id)
-    columns = []
+    columns: list[str] = []
     if snapshot.sample_pruned_at is None and snapshot.sample_rows:
-        sample = repo.load_sample(session, snapshot_id=snapshot.id)
-        columns = sorted(sample.columns) if sample is not None else []
+        columns = repo.sample_column_names(session, snapshot_id=snapshot.id)
     return {
         "model": model.name,
         "key": snapshot.key,
@@ -109,10 +108,11 @@ def snapshot_view(session: Session, *, model: ModelRow, snapshot: SnapshotRow) -
     }
 
 
-def consecutive_holds(session: Session, *, model_id: int, limit: int = 50) -> int:
-    """How many of the latest verdicts in a row are holds (overrides to promote end a run)."""
-    rows, _ = repo.list_verdicts(session, model_id=model_id, limit=limit)
-    overrides = repo.overrides_for(session, verdict_ids=[v.id for v, _ in rows])
+def _holds_in_a_row(
+    rows: Sequence[tuple[VerdictRow, SnapshotRow]], overrides: dict[int, list[OverrideRow]]
+) -> int:
+    """How many of the latest verdicts (*rows*, newest first) in a row are holds; an override
+    to promote ends a run."""
     count = 0
     for verdict, _ in rows:
         if repo.effective_decision(verdict, overrides[verdict.id]) != "hold":
@@ -126,17 +126,19 @@ def model_view(
 ) -> dict[str, Any]:
     baseline = repo.snapshot_by_id(session, snapshot_id=model.baseline_id)
     reference = repo.snapshot_by_id(session, snapshot_id=model.reference_id)
-    last = repo.last_verdict(session, model_id=model.id)
-    last_view = None
-    if last is not None:
-        overrides = repo.overrides_for(session, verdict_ids=[last[0].id])[last[0].id]
-        last_view = verdict_summary(last[0], last[1], overrides, model.name)
     since = repo.utc(model.baseline_since)
     age = (now - since).total_seconds() if since else None
     policy = select_policy(policies, model.name)
     # A model no policy matches uses the default threshold.
     threshold = (policy.history if policy is not None else HistoryRules()).stuck_after_holds
-    holds = consecutive_holds(session, model_id=model.id, limit=max(50, threshold + 1))
+    # One read of the latest verdicts serves both the last verdict and the run of holds.
+    rows, _ = repo.list_verdicts(session, model_id=model.id, limit=max(50, threshold + 1))
+    overrides = repo.overrides_for(session, verdict_ids=[v.id for v, _ in rows])
+    last_view = None
+    if rows:
+        last, last_snapshot = rows[0]
+        last_view = verdict_summary(last, last_snapshot, overrides[last.id], model.name)
+    holds = _holds_in_a_row(rows, overrides)
     return {
         "name": model.name,
         "baseline": baseline.key if baseline else None,

@@ -149,6 +149,15 @@ def load_sample(session: Session, *, snapshot_id: int) -> Sample | None:
     return codec.decode_sample({name: (c, n, data) for name, c, n, data in rows})
 
 
+def sample_column_names(session: Session, *, snapshot_id: int) -> list[str]:
+    """The names of a snapshot's stored sample columns, sorted (nothing is decoded)."""
+    return sorted(
+        session.scalars(
+            select(SampleColumnRow.name).where(SampleColumnRow.snapshot_id == snapshot_id)
+        ).all()
+    )
+
+
 def to_gate_snapshot(
     session: Session, *, row: SnapshotRow, model_name: str, with_sample: bool = True
 ) -> Snapshot:
@@ -317,11 +326,6 @@ def list_verdicts(
     more = len(rows) > limit
     rows = rows[:limit]
     return rows, (rows[-1][0].id if more and rows else None)
-
-
-def last_verdict(session: Session, *, model_id: int) -> tuple[VerdictRow, SnapshotRow] | None:
-    rows, _ = list_verdicts(session, model_id=model_id, limit=1)
-    return rows[0] if rows else None
 
 
 def count_verdicts(
