@@ -9,10 +9,10 @@ from dataclasses import dataclass, field
 from datetime import datetime
 from typing import Annotated, Any
 
-from fastapi import Depends, Request
+from fastapi import Depends, Query, Request
 from sqlalchemy.orm import Session, sessionmaker
 
-from service.errors import Forbidden
+from service.errors import Forbidden, InvalidInput
 from service.gate.policy import Policy
 from service.settings import Settings
 from service.store.db import read_transaction, transaction
@@ -196,7 +196,24 @@ def access_of(dependant: Any) -> list[str]:
     return found
 
 
+def cursor_before(
+    cursor: Annotated[
+        str | None, Query(max_length=100, description="next_cursor of the previous page.")
+    ] = None,
+) -> int | None:
+    """The id a page continues before, from the ``cursor`` query parameter (422 if not ours)."""
+    if cursor is None:
+        return None
+    from service.store import repo
+
+    try:
+        return repo.decode_cursor(cursor)
+    except ValueError as exc:
+        raise InvalidInput(str(exc), field="query.cursor") from None
+
+
 DbDep = Annotated[Database, Depends(get_db)]
+CursorDep = Annotated[int | None, Depends(cursor_before)]
 SettingsDep = Annotated[Settings, Depends(get_settings)]
 PoliciesDep = Annotated[list[Policy], Depends(get_policies)]
 ClockDep = Annotated[Callable[[], datetime], Depends(get_clock)]

@@ -7,10 +7,10 @@ from typing import Annotated, Any
 from fastapi import APIRouter, Query
 
 from service import views
-from service.api.deps import DbDep, ReaderDep
+from service.api.deps import CursorDep, DbDep, ReaderDep
 from service.api.routers.snapshots import ERRORS
 from service.api.schemas import AuditList
-from service.errors import Forbidden, InvalidInput
+from service.errors import Forbidden
 from service.store import repo
 
 router = APIRouter(prefix="/v1/audit", tags=["audit"])
@@ -30,18 +30,12 @@ def list_audit(
     principal: ReaderDep,
     model: Annotated[str | None, Query(max_length=100, description="Only this model.")] = None,
     limit: Annotated[int, Query(ge=1, le=500)] = 50,
-    cursor: Annotated[str | None, Query(max_length=100)] = None,
+    before_id: CursorDep = None,
 ) -> dict[str, object]:
     if not principal.allows("read", model):
         raise Forbidden(
             f"{principal.name} may not read the audit log" + (f" of {model!r}" if model else "")
         )
-    before_id = None
-    if cursor is not None:
-        try:
-            before_id = repo.decode_cursor(cursor)
-        except ValueError as exc:
-            raise InvalidInput(str(exc), field="query.cursor") from None
     with db.read() as session:
         rows = list(repo.list_audit(session, model=model, limit=limit + 1, before_id=before_id))
     more = len(rows) > limit

@@ -8,7 +8,15 @@ from typing import Annotated, Literal
 from fastapi import APIRouter, Query
 
 from service import operate, views
-from service.api.deps import ClockDep, DbDep, OperatorDep, PoliciesDep, ReaderDep, SettingsDep
+from service.api.deps import (
+    ClockDep,
+    CursorDep,
+    DbDep,
+    OperatorDep,
+    PoliciesDep,
+    ReaderDep,
+    SettingsDep,
+)
 from service.api.routers.snapshots import ERRORS, ModelPath
 from service.api.schemas import (
     BaselinePublic,
@@ -77,14 +85,8 @@ def list_verdicts(
     since: Annotated[datetime | None, Query(description="Created at or after (ISO 8601).")] = None,
     until: Annotated[datetime | None, Query(description="Created before (ISO 8601).")] = None,
     limit: Annotated[int, Query(ge=1, le=500)] = 50,
-    cursor: Annotated[str | None, Query(max_length=100)] = None,
+    before_id: CursorDep = None,
 ) -> dict[str, object]:
-    before_id = None
-    if cursor is not None:
-        try:
-            before_id = repo.decode_cursor(cursor)
-        except ValueError as exc:
-            raise InvalidInput(str(exc), field="query.cursor") from None
     for name, value in (("since", since), ("until", until)):
         if value is not None and value.tzinfo is None:
             raise InvalidInput(
