@@ -4,7 +4,12 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: demo test setup serve bench clean
+.PHONY: demo test setup serve bench clean lint
+
+lint: $(STAMP)
+	$(BIN)/ruff check .
+	$(BIN)/ruff format --check .
+	$(BIN)/mypy
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -18,8 +23,11 @@ setup: $(STAMP)
 demo: $(STAMP)
 	$(BIN)/tidegate demo
 
-## Set up and run the whole test suite (CI runs exactly this).
+## Set up, lint, type-check and run the whole test suite (CI runs exactly this).
 test: $(STAMP)
+	$(BIN)/ruff check .
+	$(BIN)/ruff format --check .
+	$(BIN)/mypy
 	$(BIN)/python -m pytest -q
 
 serve: $(STAMP)

@@ -54,11 +54,13 @@ def _logloss(labels: np.ndarray, scores: np.ndarray) -> float:
 
 def _logit(p: np.ndarray) -> np.ndarray:
     p = np.clip(p, 1e-6, 1 - 1e-6)
-    return np.log(p / (1 - p))
+    out: np.ndarray = np.log(p / (1 - p))
+    return out
 
 
 def _sigmoid(x: np.ndarray) -> np.ndarray:
-    return 1.0 / (1.0 + np.exp(-x))
+    out: np.ndarray = 1.0 / (1.0 + np.exp(-x))
+    return out
 
 
 class World:

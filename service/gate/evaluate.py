@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import dataclasses
 from collections.abc import Iterable
+from typing import Literal
 
 from service.gate.adaptive import apply_adaptive
 from service.gate.checks import REGISTRY, CheckConfig, CheckContext
@@ -158,7 +159,7 @@ def evaluate(inp: GateInput, policy: Policy | None) -> Verdict:
         reasons.append(
             "first snapshot of this model: the policy holds it until a person sets the baseline"
         )
-    decision = "hold" if reasons else "promote"
+    decision: Literal["promote", "hold"] = "hold" if reasons else "promote"
     return Verdict(
         decision=decision,
         reasons=tuple(reasons),

@@ -254,7 +254,7 @@ class Finding:
             pvalue=data.get("pvalue"),
             baseline_value=data.get("baseline_value"),
             candidate_value=data.get("candidate_value"),
-            interval=tuple(interval) if interval else None,  # type: ignore[arg-type]
+            interval=tuple(interval) if interval else None,
             blocking=bool(data.get("blocking", True)),
             against=data.get("against"),
             details=data.get("details") or {},

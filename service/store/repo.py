@@ -307,7 +307,7 @@ def list_verdicts(
     before_id: int | None = None,
 ) -> tuple[list[tuple[VerdictRow, SnapshotRow]], int | None]:
     """Verdicts newest first, and the id to continue before (None on the last page)."""
-    stmt: Select[tuple[VerdictRow, SnapshotRow]] = (
+    stmt: Select[VerdictRow, SnapshotRow] = (
         select(VerdictRow, SnapshotRow)
         .join(SnapshotRow, SnapshotRow.id == VerdictRow.snapshot_id)
         .where(VerdictRow.model_id == model_id)
