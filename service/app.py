@@ -4,12 +4,13 @@ at import time; each test builds its own app on its own temporary database."""
 from __future__ import annotations
 
 import logging
-from collections.abc import Callable, Sequence
+from collections.abc import AsyncIterator, Callable, Sequence
+from contextlib import asynccontextmanager
 from datetime import UTC, datetime
 
 from fastapi import FastAPI
 
-from service import __version__, logs
+from service import __version__, logs, paging
 from service.api.auth import TokenGate
 from service.api.deps import Database
 from service.api.errors import install_error_handlers
@@ -57,7 +58,16 @@ def create_app(
             extra=logs.fields(event="auth", auth="open"),
         )
     loaded = list(policies) if policies is not None else load_policies(settings.policy_dir)
+
+    @asynccontextmanager
+    async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        # Messages queued before a restart are sent again (the outbox survives the process).
+        app.state.dispatcher.wake()
+        yield
+        app.state.dispatcher.stop()
+
     app = FastAPI(
+        lifespan=lifespan,
         title="tidegate",
         version=__version__,
         description="A release gate for incrementally retrained ranking and recommendation "
@@ -71,6 +81,7 @@ def create_app(
     app.state.policies = loaded
     app.state.clock = clock
     app.state.metrics = Metrics()
+    app.state.dispatcher = paging.Dispatcher(settings, app.state.database.factory, clock=clock)
     install_error_handlers(app)
     for router in (
         snapshots.router,

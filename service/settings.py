@@ -7,7 +7,7 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Literal
 
-from pydantic import Field
+from pydantic import Field, SecretStr, model_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
 
@@ -59,3 +59,55 @@ class Settings(BaseSettings):
         description="On SIGTERM, how long requests in flight may take to finish before "
         "the service stops anyway, in seconds.",
     )
+    public_url: str = Field(
+        "http://127.0.0.1:8080",
+        description="The address people use to reach this service; links in webhook messages "
+        "start with it.",
+    )
+    webhook_url: str | None = Field(
+        None,
+        description="Where hold, stuck and override events are posted as signed JSON "
+        "(None: no webhook).",
+    )
+    webhook_secret: SecretStr | None = Field(
+        None,
+        description="Shared secret for the webhook's HMAC-SHA256 signature (at least 16 "
+        "characters; required with a webhook URL).",
+    )
+    webhook_events: str = Field(
+        "hold,stuck,override",
+        description="Comma-separated events that are sent: hold, stuck, override.",
+    )
+    webhook_timeout_seconds: float = Field(
+        5.0, gt=0, le=120, description="Time limit of one webhook delivery attempt, in seconds."
+    )
+    webhook_max_attempts: int = Field(
+        8, ge=1, le=50, description="Attempts per webhook message before it is marked failed."
+    )
+    webhook_backoff_seconds: float = Field(
+        2.0,
+        gt=0,
+        le=3600,
+        description="Wait before the first retry of a webhook message; doubles per attempt "
+        "(with jitter), capped at one hour.",
+    )
+
+    @model_validator(mode="after")
+    def _webhook_complete(self) -> Settings:
+        events = {e.strip() for e in self.webhook_events.split(",") if e.strip()}
+        unknown = events - {"hold", "stuck", "override"}
+        if unknown:
+            raise ValueError(f"webhook_events: unknown event(s) {sorted(unknown)}")
+        if self.webhook_url is not None:
+            if not self.webhook_url.startswith(("http://", "https://")):
+                raise ValueError("webhook_url must start with http:// or https://")
+            secret = self.webhook_secret.get_secret_value() if self.webhook_secret else ""
+            if len(secret) < 16:
+                raise ValueError("webhook_url needs webhook_secret of at least 16 characters")
+        return self
+
+    def webhook_event_set(self) -> frozenset[str]:
+        """The events to send (empty without a webhook URL)."""
+        if self.webhook_url is None:
+            return frozenset()
+        return frozenset(e.strip() for e in self.webhook_events.split(",") if e.strip())

@@ -387,3 +387,25 @@ class ReplayPublic(BaseModel):
     policy_digest: str
     summary: dict[str, Any]
     data: list[ReplayRow]
+
+
+class DeliveryPublic(BaseModel):
+    """One webhook message about a model (hold, stuck or override) and how its delivery went."""
+
+    id: int
+    event: str
+    verdict_id: int | None
+    snapshot: str | None
+    state: Literal["pending", "delivered", "failed"]
+    attempts: int
+    last_status: int | None
+    last_error: str | None
+    created_at: str | None
+    last_attempt_at: str | None
+    delivered_at: str | None
+    next_attempt_at: str | None
+
+
+class DeliveryList(BaseModel):
+    data: list[DeliveryPublic]
+    count: int

@@ -535,3 +535,11 @@ def list_audit(
     if before_id is not None:
         stmt = stmt.where(AuditRow.id < before_id)
     return session.scalars(stmt.order_by(AuditRow.id.desc()).limit(limit)).all()
+
+
+def verdict_counts_by_model(session: Session) -> dict[tuple[int, str], int]:
+    """How many verdicts each model has, by the gate's decision: ``{(model_id, decision): n}``."""
+    stmt = select(VerdictRow.model_id, VerdictRow.decision, func.count(VerdictRow.id)).group_by(
+        VerdictRow.model_id, VerdictRow.decision
+    )
+    return {(int(m), str(d)): int(n) for m, d, n in session.execute(stmt)}

@@ -191,3 +191,34 @@ class TokenRow(Base):
     created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
     revoked_at: Mapped[datetime | None] = mapped_column(DateTime(timezone=True))
     last_used_at: Mapped[datetime | None] = mapped_column(DateTime(timezone=True))
+
+
+class DeliveryRow(Base):
+    """One outgoing webhook message (an event: hold, stuck, override) and how its delivery went.
+
+    Written in the same transaction as the verdict or override it reports (an outbox), so an
+    acknowledged event is never lost; a dispatcher sends it afterwards, retrying with backoff.
+    """
+
+    __tablename__ = "webhook_deliveries"
+    __table_args__ = (
+        Index("ix_webhook_deliveries_model_id_id", "model_id", "id"),
+        Index("ix_webhook_deliveries_pending", "delivered_at", "failed_at", "next_attempt_at"),
+    )
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    model_id: Mapped[int] = mapped_column(ForeignKey("models.id"))
+    event: Mapped[str] = mapped_column(String(20))  # hold | stuck | override
+    verdict_id: Mapped[int | None] = mapped_column(ForeignKey("verdicts.id"))
+    url: Mapped[str] = mapped_column(Text)
+    payload: Mapped[dict[str, Any]] = mapped_column(JSON)
+    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
+    attempts: Mapped[int] = mapped_column(Integer, default=0)
+    next_attempt_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
+    #: A dispatcher that took the message holds it until then (several workers share the table).
+    lease_until: Mapped[datetime | None] = mapped_column(DateTime(timezone=True))
+    last_status: Mapped[int | None] = mapped_column(Integer)
+    last_error: Mapped[str] = mapped_column(Text, default="")
+    last_attempt_at: Mapped[datetime | None] = mapped_column(DateTime(timezone=True))
+    delivered_at: Mapped[datetime | None] = mapped_column(DateTime(timezone=True))
+    failed_at: Mapped[datetime | None] = mapped_column(DateTime(timezone=True))

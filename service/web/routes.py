@@ -27,13 +27,13 @@ from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from fastapi.templating import Jinja2Templates
 from sqlalchemy.orm import Session
 
-from service import explain, operate, views
+from service import explain, operate, paging, views
 from service.api.deps import PUBLIC, ClockDep, DbDep, PoliciesDep, Principal
 from service.api.schemas import MAX_ID
 from service.errors import Conflict, Forbidden, InvalidInput, NotFound, TidegateError
 from service.evidence import DEFAULT_BINS
 from service.gate.policy import select_policy
-from service.store import repo
+from service.store import deliveries, repo
 from service.store.tables import ModelRow, SnapshotRow, VerdictRow
 from service.web import csrf, format, svg, trends
 from service.web.auth import SESSION_COOKIE
@@ -230,6 +230,9 @@ def model_context(
             views.audit_view(a)
             for a in repo.list_audit(session, model=row.name, limit=12, exclude_actor="gate")
         ],
+        "deliveries": [
+            paging.delivery_view(d) for d in deliveries.for_model(session, model_id=row.id)
+        ],
     }
 
 
@@ -375,6 +378,9 @@ def override_form(
                 actor=principal.name,
                 now=now,
             )
+            queued = paging.on_override(
+                session, settings=request.app.state.settings, outcome=outcome, now=now
+            )
             target = format.snapshot_url(model.name, outcome.snapshot.key)
     except (InvalidInput, Conflict) as exc:
         return _form_again(
@@ -382,6 +388,7 @@ def override_form(
         )
     except TidegateError as exc:
         return error_page(request, exc, principal, now)
+    paging.wake(request.app.state, queued)
     return RedirectResponse(target + "?done=override", status_code=303)
 
 

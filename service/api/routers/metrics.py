@@ -1,11 +1,14 @@
-"""Prometheus metrics of this process (see service/metrics.py)."""
+"""Prometheus metrics: this process's counters and histograms (see service/metrics.py), and
+per-model gauges read from the database at scrape time (see service/paging.py), so every worker
+answers the same model state."""
 
 from __future__ import annotations
 
 from fastapi import APIRouter, Request
 from fastapi.responses import PlainTextResponse
 
-from service.api.deps import ReaderDep
+from service import paging
+from service.api.deps import ClockDep, DbDep, PoliciesDep, ReaderDep
 from service.api.routers.snapshots import ERRORS
 
 router = APIRouter(tags=["operations"])
@@ -23,6 +26,13 @@ CONTENT_TYPE = "text/plain; version=0.0.4; charset=utf-8"
     summary="Metrics in the Prometheus text format (series of models outside the token's scope "
     "are left out)",
 )
-def metrics(request: Request, principal: ReaderDep) -> PlainTextResponse:
-    text = request.app.state.metrics.render(allow=lambda model: principal.allows("read", model))
+def metrics(
+    request: Request, db: DbDep, clock: ClockDep, policies: PoliciesDep, principal: ReaderDep
+) -> PlainTextResponse:
+    def allow(model: str) -> bool:
+        return principal.allows("read", model)
+
+    text = request.app.state.metrics.render(allow=allow)
+    with db.read() as session:
+        text += paging.model_gauges(session, policies=policies, now=clock(), allow=allow)
     return PlainTextResponse(text, media_type=CONTENT_TYPE)

@@ -7,7 +7,7 @@ from typing import Annotated, Literal
 
 from fastapi import APIRouter, Query
 
-from service import operate, views
+from service import operate, paging, views
 from service.api.deps import (
     ClockDep,
     CursorDep,
@@ -21,6 +21,7 @@ from service.api.routers.snapshots import ERRORS, ModelPath
 from service.api.schemas import (
     BaselinePublic,
     BaselineSet,
+    DeliveryList,
     ModelList,
     ModelPublic,
     ReferencePublic,
@@ -32,7 +33,7 @@ from service.api.schemas import (
 from service.errors import InvalidInput, NotFound
 from service.gate.policy import PolicyError, parse_policy, select_policy
 from service.replay import replay
-from service.store import repo
+from service.store import deliveries, repo
 
 router = APIRouter(prefix="/v1/models", tags=["models"])
 
@@ -207,3 +208,26 @@ def set_reference(
         "reference": pinned.key if pinned else None,
         "previous": previous.key if previous else None,
     }
+
+
+@router.get(
+    "/{model}/deliveries",
+    response_model=DeliveryList,
+    responses=ERRORS,
+    summary="The model's latest webhook messages (hold, stuck, override) and their delivery",
+)
+def list_deliveries(
+    db: DbDep,
+    principal: ReaderDep,
+    model: str = ModelPath,
+    limit: Annotated[int, Query(ge=1, le=200)] = 50,
+) -> dict[str, object]:
+    with db.read() as session:
+        row = repo.get_model(session, name=model)
+        if row is None:
+            raise NotFound(f"no model {model!r}", field="model")
+        data = [
+            paging.delivery_view(d)
+            for d in deliveries.for_model(session, model_id=row.id, limit=limit)
+        ]
+    return {"data": data, "count": len(data)}

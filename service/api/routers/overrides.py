@@ -4,10 +4,10 @@ from __future__ import annotations
 
 from typing import Annotated, Any
 
-from fastapi import APIRouter, Path, Query
+from fastapi import APIRouter, Path, Query, Request
 
-from service import operate, views
-from service.api.deps import ClockDep, DbDep, OperatorDep, ReaderDep
+from service import operate, paging, views
+from service.api.deps import ClockDep, DbDep, OperatorDep, ReaderDep, SettingsDep
 from service.api.routers.snapshots import ERRORS
 from service.api.schemas import MAX_ID, EvidencePublic, OverrideCreate, OverrideResult
 
@@ -26,10 +26,13 @@ RESPONSES[403] = dict(ERRORS[404])
 def override(
     verdict_id: Annotated[int, Path(ge=1, le=MAX_ID)],
     body: OverrideCreate,
+    request: Request,
     db: DbDep,
+    settings: SettingsDep,
     clock: ClockDep,
     principal: OperatorDep,
 ) -> dict[str, object]:
+    now = clock()
     with db.transaction() as session:
         _, model = operate.verdict_with_model(session, verdict_id=verdict_id)
         principal.require("operate", model.name)
@@ -39,9 +42,10 @@ def override(
             decision=body.decision,
             reason=body.reason,
             actor=principal.name,
-            now=clock(),
+            now=now,
         )
-        return {
+        queued = paging.on_override(session, settings=settings, outcome=outcome, now=now)
+        answer: dict[str, object] = {
             "override": views.override_view(outcome.override),
             "verdict": views.verdict_detail(session, verdict=outcome.verdict),
             "decision_before": outcome.decision_before,
@@ -50,6 +54,8 @@ def override(
             "baseline_moved": outcome.baseline_moved,
             "note": outcome.note,
         }
+    paging.wake(request.app.state, queued)
+    return answer
 
 
 @router.get(

@@ -9,7 +9,7 @@ from typing import Any
 
 from fastapi import APIRouter, Path, Request, Response
 
-from service import intake, views
+from service import intake, paging, views
 from service.api.deps import ClockDep, DbDep, PoliciesDep, ReaderDep, SettingsDep, TrainerDep
 from service.api.sample import to_sample
 from service.api.schemas import ErrorResponse, SnapshotCreate, SnapshotPublic, VerdictPublic
@@ -96,7 +96,18 @@ def post_snapshot(
             history_limit=settings.history_limit,
             actor=principal.name,
         )
+        queued = paging.on_verdict(
+            session,
+            settings=settings,
+            policies=policies,
+            model=result.model,
+            snapshot=result.snapshot,
+            verdict=result.verdict,
+            created=result.created,
+            now=clock(),
+        )
         detail = views.verdict_detail(session, verdict=result.verdict)
+    paging.wake(request.app.state, queued)
     if result.created:
         metrics = getattr(request.app.state, "metrics", None)
         if metrics is not None:
