@@ -66,7 +66,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Literal
 
 import numpy as np
@@ -82,8 +82,6 @@ LABELS: dict[str, str] = {"ips": "IPS", "snips": "SNIPS", "dr": "doubly robust"}
 #: The columns of a logged-exploration sample, with the range each must lie in.
 LOG_COLUMNS = ("reward", "logging_propensity", "candidate_propensity", "baseline_propensity")
 MODEL_COLUMNS = ("reward_prediction", "candidate_expected_reward", "baseline_expected_reward")
-#: Relative tolerance under which a logging propensity "equals" the candidate's.
-EQUAL_RTOL = 1e-9
 
 
 # ---- health of a log ---------------------------------------------------------------------
@@ -117,17 +115,20 @@ def log_problems(columns: Mapping[str, np.ndarray]) -> list[LogProblem]:
     problems: list[LogProblem] = []
     for name in LOG_COLUMNS + MODEL_COLUMNS:
         values = columns.get(name)
-        if values is None:
+        if values is None or values.size == 0:
             continue
-        bad = ~np.isfinite(values)
-        if bad.any():
+        # min and max are NaN when any value is: two reductions decide the common case, the
+        # row masks are built only for a column that fails
+        lo, hi = float(values.min()), float(values.max())
+        if not (math.isfinite(lo) and math.isfinite(hi)):
+            bad = ~np.isfinite(values)
             problems.append(LogProblem(name, int(bad.sum()), _first(bad), "missing or non-finite"))
             continue
         if name == "logging_propensity":
-            bad = (values <= 0.0) | (values > 1.0)
-            if bad.any():
+            if lo <= 0.0 or hi > 1.0:
+                bad = (values <= 0.0) | (values > 1.0)
                 problems.append(LogProblem(name, int(bad.sum()), _first(bad), "outside (0, 1]"))
-            elif values.size and bool(np.all(values == 1.0)):
+            elif lo == 1.0:
                 problems.append(
                     LogProblem(
                         name,
@@ -136,10 +137,9 @@ def log_problems(columns: Mapping[str, np.ndarray]) -> list[LogProblem]:
                         "the logging policy never explores (every propensity is 1)",
                     )
                 )
-        elif name in ("candidate_propensity", "baseline_propensity"):
+        elif name in ("candidate_propensity", "baseline_propensity") and (lo < 0.0 or hi > 1.0):
             bad = (values < 0.0) | (values > 1.0)
-            if bad.any():
-                problems.append(LogProblem(name, int(bad.sum()), _first(bad), "outside [0, 1]"))
+            problems.append(LogProblem(name, int(bad.sum()), _first(bad), "outside [0, 1]"))
     return problems
 
 
@@ -188,6 +188,12 @@ class WeightSummary:
         }
 
 
+def _dot(a: np.ndarray, b: np.ndarray) -> float:
+    """``sum(a * b)`` of two 1-D arrays. ``np.einsum`` rather than ``np.dot``: a threaded BLAS
+    can be a hundred times slower on a busy machine for a single vector product."""
+    return float(np.einsum("i,i->", a, b))
+
+
 def kish_ess(weights: object) -> float:
     """Kish's effective sample size ``(sum w)^2 / sum w^2`` of non-negative weights [8].
 
@@ -201,42 +207,165 @@ def kish_ess(weights: object) -> float:
     1.6
     """
     w = np.asarray(weights, dtype=np.float64)
-    s2 = float(np.dot(w, w))
+    s2 = float(_dot(w, w))
     return float(w.sum()) ** 2 / s2 if s2 > 0 else 0.0
 
 
-def _weights(
-    target: np.ndarray, inverse_logging: np.ndarray, max_weight: float | None
-) -> tuple[np.ndarray, WeightSummary]:
-    n = target.size
-    w = target * inverse_logging
-    total = float(w.sum())
-    mean = total / n
-    sq = float(np.dot(w, w))
+#: Rows per block: the per-row work runs over blocks this long, so temporaries stay in the
+#: processor's cache and no array of the log's length is built (one pass over the columns).
+BLOCK = 32_768
+
+
+@dataclass
+class _Acc:
+    """Running sums of one policy over the blocks (see :func:`_accumulate`)."""
+
+    raw_w: float = 0.0  # unclipped weights: sum, sum of squares, largest
+    raw_w2: float = 0.0
+    raw_max: float = 0.0
+    zero: int = 0
+    clipped: int = 0
+    clipped_mass: float = 0.0  # sum of (w - M)_+
+    w: float = 0.0  # (clipped) weights
+    w2: float = 0.0
+    t: float = 0.0  # IPS terms t = w r
+    t2: float = 0.0
+    tw: float = 0.0  # sum t w (SNIPS)
+    dr: float = 0.0  # doubly robust terms g + w (r - r_hat)
+    dr2: float = 0.0
+
+
+@dataclass
+class _PairAcc:
+    tt: float = 0.0  # sum t_c t_b
+    tw: float = 0.0  # sum t_c w_b
+    wt: float = 0.0  # sum w_c t_b
+    ww: float = 0.0  # sum w_c w_b
+    dd: float = 0.0  # doubly robust differences: sum, sum of squares
+    dd2: float = 0.0
+    equal: int = 0
+    max_abs_reward: float = 0.0
+    max_abs_residual: float = 0.0
+
+
+def _policy_block(
+    acc: _Acc, target: np.ndarray, logging: np.ndarray, max_weight: float | None
+) -> np.ndarray:
+    w: np.ndarray = target / logging
+    total, squares = float(w.sum()), _dot(w, w)
     top = float(w.max())
-    var = max(sq / n - mean * mean, 0.0) * n / max(n - 1, 1)
-    clipped_rows, clipped_mass = 0, 0.0
+    acc.raw_w += total
+    acc.raw_w2 += squares
+    acc.raw_max = max(acc.raw_max, top)
+    acc.zero += int(w.size - np.count_nonzero(target))
     if max_weight is not None and top > max_weight:
         over = w > max_weight
-        clipped_rows = int(np.count_nonzero(over))
-        clipped_mass = float((w[over] - max_weight).sum()) / n
-        w = np.minimum(w, max_weight)
-        sq = float(np.dot(w, w))
-        total_used = float(w.sum())
-    else:
-        total_used = total
-    summary = WeightSummary(
+        acc.clipped += int(np.count_nonzero(over))
+        acc.clipped_mass += float((w[over] - max_weight).sum())
+        np.minimum(w, max_weight, out=w)
+        total, squares = float(w.sum()), _dot(w, w)
+    acc.w += total
+    acc.w2 += squares
+    return w
+
+
+def _accumulate(
+    columns: Mapping[str, np.ndarray], max_weight: float | None
+) -> tuple[_Acc, _Acc, _PairAcc, dict[str, tuple[float, float]]]:
+    """Every sum the estimators and diagnostics need, in one blocked pass over the rows, with
+    each column's smallest and largest value (NaN when any value is NaN)."""
+    r_all = columns["reward"]
+    model = "reward_prediction" in columns
+    c, b, pair = _Acc(), _Acc(), _PairAcc()
+    bounds = dict.fromkeys(columns, (math.inf, -math.inf))
+
+    def seen(name: str, values: np.ndarray) -> None:
+        lo, hi = bounds[name]
+        # min/max propagate NaN, and so do these comparisons' fallbacks below
+        block_lo, block_hi = float(values.min()), float(values.max())
+        bounds[name] = (
+            block_lo if block_lo < lo or math.isnan(block_lo) or math.isnan(lo) else lo,
+            block_hi if block_hi > hi or math.isnan(block_hi) or math.isnan(hi) else hi,
+        )
+
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        for start in range(0, r_all.size, BLOCK):
+            rows = slice(start, start + BLOCK)
+            r = r_all[rows]
+            logging = columns["logging_propensity"][rows]
+            candidate = columns["candidate_propensity"][rows]
+            baseline = columns["baseline_propensity"][rows]
+            for name, values in (
+                ("reward", r),
+                ("logging_propensity", logging),
+                ("candidate_propensity", candidate),
+                ("baseline_propensity", baseline),
+            ):
+                seen(name, values)
+            wc = _policy_block(c, candidate, logging, max_weight)
+            wb = _policy_block(b, baseline, logging, max_weight)
+            pair.equal += int(np.count_nonzero(logging == candidate))
+            tc, tb = wc * r, wb * r
+            for acc, w, t in ((c, wc, tc), (b, wb, tb)):
+                acc.t += float(t.sum())
+                acc.t2 += _dot(t, t)
+                acc.tw += _dot(t, w)
+            pair.tt += _dot(tc, tb)
+            pair.tw += _dot(tc, wb)
+            pair.wt += _dot(wc, tb)
+            pair.ww += _dot(wc, wb)
+            if model:
+                prediction = columns["reward_prediction"][rows]
+                g_c = columns["candidate_expected_reward"][rows]
+                g_b = columns["baseline_expected_reward"][rows]
+                seen("reward_prediction", prediction)
+                seen("candidate_expected_reward", g_c)
+                seen("baseline_expected_reward", g_b)
+                residual = r - prediction
+                pair.max_abs_residual = max(
+                    pair.max_abs_residual, float(residual.max()), -float(residual.min())
+                )
+                dc = wc * residual
+                dc += g_c
+                db = np.multiply(wb, residual, out=residual)
+                db += g_b
+                for acc, d in ((c, dc), (b, db)):
+                    acc.dr += float(d.sum())
+                    acc.dr2 += _dot(d, d)
+                dc -= db
+                pair.dd += float(dc.sum())
+                pair.dd2 += _dot(dc, dc)
+    lo, hi = bounds["reward"]
+    pair.max_abs_reward = max(abs(lo), abs(hi))
+    return c, b, pair, bounds
+
+
+def _in_range(bounds: dict[str, tuple[float, float]]) -> bool:
+    """Whether the columns' bounds show a usable log (else :func:`log_problems` says why)."""
+    for name, (lo, hi) in bounds.items():
+        if not (math.isfinite(lo) and math.isfinite(hi)):
+            return False
+        if name == "logging_propensity" and (lo <= 0.0 or hi > 1.0 or lo == 1.0):
+            return False
+        if name in ("candidate_propensity", "baseline_propensity") and (lo < 0.0 or hi > 1.0):
+            return False
+    return True
+
+
+def _summary(acc: _Acc, n: int) -> WeightSummary:
+    mean = acc.raw_w / n
+    var = max(acc.raw_w2 - acc.raw_w * mean, 0.0) / max(n - 1, 1)
+    return WeightSummary(
         n=n,
-        ess=total_used * total_used / sq if sq > 0 else 0.0,
+        ess=acc.w * acc.w / acc.w2 if acc.w2 > 0 else 0.0,
         mean_weight=mean,
         mean_weight_se=math.sqrt(var / n),
-        max_weight=top,
-        max_weight_share=top / total if total > 0 else 0.0,
-        zero_rows=n - int(np.count_nonzero(target)),
-        clipped_rows=clipped_rows,
-        clipped_mass=clipped_mass,
+        max_weight=acc.raw_max,
+        max_weight_share=acc.raw_max / acc.raw_w if acc.raw_w > 0 else 0.0,
+        zero_rows=acc.zero,
+        clipped_rows=acc.clipped,
+        clipped_mass=acc.clipped_mass / n,
     )
-    return w, summary
 
 
 # ---- prepared log ------------------------------------------------------------------------
@@ -244,27 +373,46 @@ def _weights(
 
 @dataclass(frozen=True)
 class PreparedLog:
-    """A validated log with both policies' (clipped) weights: the work every estimator shares."""
+    """A validated log and the sums every estimator needs, from one pass over its rows."""
 
-    reward: np.ndarray
-    w_candidate: np.ndarray
-    w_baseline: np.ndarray
+    #: The validated columns (the caller's arrays, not copies).
+    columns: Mapping[str, np.ndarray]
+    max_weight: float | None
     candidate_weights: WeightSummary
     baseline_weights: WeightSummary
-    #: Rows whose logging propensity equals the candidate's own (relative tolerance 1e-9).
+    #: Rows whose logging propensity equals the candidate's own, exactly.
     equal_rows: int
-    max_weight: float | None
-    reward_prediction: np.ndarray | None = None
-    candidate_expected: np.ndarray | None = None
-    baseline_expected: np.ndarray | None = None
+    _candidate: _Acc = field(repr=False)
+    _baseline: _Acc = field(repr=False)
+    _pair: _PairAcc = field(repr=False)
 
     @property
     def n(self) -> int:
-        return int(self.reward.size)
+        return int(self.columns["reward"].size)
 
     @property
     def has_model(self) -> bool:
-        return self.reward_prediction is not None
+        return "reward_prediction" in self.columns
+
+    def row_terms(self, estimator: Estimator) -> tuple[np.ndarray, np.ndarray]:
+        """Per-row terms of each policy (for the bootstrap): ``(w_c, w_b)`` weights for
+        SNIPS's ratio, ``w r`` for IPS, ``g + w (r - r_hat)`` for DR (clipped weights)."""
+        cols = self.columns
+        logging = cols["logging_propensity"]
+        out = []
+        for name, expected in (
+            ("candidate_propensity", "candidate_expected_reward"),
+            ("baseline_propensity", "baseline_expected_reward"),
+        ):
+            w = cols[name] / logging
+            if self.max_weight is not None:
+                np.minimum(w, self.max_weight, out=w)
+            if estimator == "ips":
+                w = w * cols["reward"]
+            elif estimator == "dr":
+                w = cols[expected] + w * (cols["reward"] - cols["reward_prediction"])
+            out.append(w)
+        return out[0], out[1]
 
 
 def _array(values: object, name: str, n: int | None) -> np.ndarray:
@@ -287,7 +435,7 @@ def prepare(
     baseline_expected_reward: object | None = None,
     max_weight: float | None = None,
 ) -> PreparedLog:
-    """Validate a log and compute both policies' weights and diagnostics once.
+    """Validate a log and compute, in one pass, the sums every estimator and diagnostic needs.
 
     Parameters
     ----------
@@ -328,24 +476,19 @@ def prepare(
             columns[name] = _array(values, name, n)
     if max_weight is not None and not (math.isfinite(max_weight) and max_weight >= 1.0):
         raise ValueError(f"max_weight must be a finite number >= 1, got {max_weight!r}")
-    check_log(columns)
-    logging = columns["logging_propensity"]
-    candidate = columns["candidate_propensity"]
-    inverse = 1.0 / logging
-    wc, sc = _weights(candidate, inverse, max_weight)
-    wb, sb = _weights(columns["baseline_propensity"], inverse, max_weight)
-    equal = int(np.count_nonzero(np.abs(logging - candidate) <= EQUAL_RTOL * logging))
+    c, b, pair, bounds = _accumulate(columns, max_weight)
+    if not _in_range(bounds):
+        check_log(columns)  # names the column and the first bad row
+        raise ValueError(f"unusable log: column bounds {bounds}")  # pragma: no cover
     return PreparedLog(
-        reward=r,
-        w_candidate=wc,
-        w_baseline=wb,
-        candidate_weights=sc,
-        baseline_weights=sb,
-        equal_rows=equal,
+        columns=columns,
         max_weight=max_weight,
-        reward_prediction=columns.get("reward_prediction"),
-        candidate_expected=columns.get("candidate_expected_reward"),
-        baseline_expected=columns.get("baseline_expected_reward"),
+        candidate_weights=_summary(c, n),
+        baseline_weights=_summary(b, n),
+        equal_rows=pair.equal,
+        _candidate=c,
+        _baseline=b,
+        _pair=pair,
     )
 
 
@@ -377,12 +520,10 @@ class OffPolicyComparison:
     equal_rows: int
 
 
-def _mean_se(x: np.ndarray) -> tuple[float, float]:
-    n = x.size
-    mean = float(x.sum()) / n
-    centred = x - mean
-    var = float(np.dot(centred, centred)) / (n - 1)
-    return mean, math.sqrt(var / n)
+def _se_from_sums(total: float, squares: float, n: int) -> float:
+    """``sd / sqrt(n)`` (n - 1 divisor) from ``sum x`` and ``sum x^2``."""
+    var = max(squares - total * total / n, 0.0) / (n - 1)
+    return math.sqrt(var / n)
 
 
 def _interval(estimate: float, se: float, z: float) -> tuple[float, float]:
@@ -394,29 +535,48 @@ def normal_quantile(confidence: float) -> float:
     return float(sps.norm.ppf(0.5 + check_confidence(confidence) / 2.0))
 
 
-def _terms(log: PreparedLog, estimator: Estimator, side: Literal["c", "b"]) -> np.ndarray:
-    """Per-row terms whose mean is the IPS or DR estimate (follows [1] and [3])."""
-    w = log.w_candidate if side == "c" else log.w_baseline
+def _means(log: PreparedLog, estimator: Estimator) -> tuple[float, float, float, float, float]:
+    """Both values, their standard errors and that of the paired difference.
+
+    IPS [1] and DR [3]: means of per-row terms, and of their per-row differences. SNIPS [2]:
+    the influence of row i on ``V = sum(w r) / sum(w)`` is ``psi_i = a (t_i - V w_i)`` with
+    ``t = w r`` and ``a = n / sum(w)`` [6]; its sum of squares and the cross-product of the two
+    policies' influences expand into the accumulated sums of products of ``t`` and ``w``:
+    ``sum psi^2 = a^2 (sum t^2 - 2 V sum t w + V^2 sum w^2)``.
+    """
+    n = log.n
+    c, b, p = log._candidate, log._baseline, log._pair
     if estimator == "ips":
-        terms: np.ndarray = w * log.reward
-        return terms
-    assert log.reward_prediction is not None
-    expected = log.candidate_expected if side == "c" else log.baseline_expected
-    assert expected is not None
-    terms = expected + w * (log.reward - log.reward_prediction)
-    return terms
-
-
-def _snips(w: np.ndarray, r: np.ndarray) -> tuple[float, np.ndarray]:
-    """The SNIPS estimate [2] and each row's influence ``w_i (r_i - V) / mean(w)`` [6]."""
-    total = float(w.sum())
-    if total <= 0:
-        raise ValueError(
-            "every weight is 0: the policy never takes a logged action, so SNIPS is undefined"
+        se_d = _se_from_sums(c.t - b.t, c.t2 + b.t2 - 2 * p.tt, n)
+        return c.t / n, b.t / n, _se_from_sums(c.t, c.t2, n), _se_from_sums(b.t, b.t2, n), se_d
+    if estimator == "dr":
+        return (
+            c.dr / n,
+            b.dr / n,
+            _se_from_sums(c.dr, c.dr2, n),
+            _se_from_sums(b.dr, b.dr2, n),
+            _se_from_sums(p.dd, p.dd2, n),
         )
-    value = float(np.dot(w, r)) / total
-    influence = w * (r - value) * (w.size / total)
-    return value, influence
+    for who, acc in (("candidate", c), ("baseline", b)):
+        if acc.w <= 0:
+            raise ValueError(
+                f"every {who} weight is 0: the policy never takes a logged action, so SNIPS "
+                "is undefined"
+            )
+    vc, vb = c.t / c.w, b.t / b.w
+    ac, ab = n / c.w, n / b.w
+    ss_c = ac * ac * (c.t2 - 2 * vc * c.tw + vc * vc * c.w2)
+    ss_b = ab * ab * (b.t2 - 2 * vb * b.tw + vb * vb * b.w2)
+    cross = ac * ab * (p.tt - vb * p.tw - vc * p.wt + vc * vb * p.ww)
+    # the influences sum to 0 exactly, so the n - 1 variance is the sum of squares over n - 1
+    scale = 1.0 / (n * (n - 1))
+    return (
+        vc,
+        vb,
+        math.sqrt(max(ss_c, 0.0) * scale),
+        math.sqrt(max(ss_b, 0.0) * scale),
+        math.sqrt(max(ss_c + ss_b - 2 * cross, 0.0) * scale),
+    )
 
 
 def _bias_bound(log: PreparedLog, estimator: Estimator, summary: WeightSummary) -> float | None:
@@ -425,11 +585,7 @@ def _bias_bound(log: PreparedLog, estimator: Estimator, summary: WeightSummary) 
         return None
     if summary.clipped_rows == 0:
         return 0.0
-    if estimator == "ips":
-        g = float(np.abs(log.reward).max())
-    else:
-        assert log.reward_prediction is not None
-        g = float(np.abs(log.reward - log.reward_prediction).max())
+    g = log._pair.max_abs_reward if estimator == "ips" else log._pair.max_abs_residual
     return summary.clipped_mass * g
 
 
@@ -482,26 +638,15 @@ def compare(
         )
     z = normal_quantile(confidence)
     n = log.n
-    if estimator == "snips":
-        vc, ic = _snips(log.w_candidate, log.reward)
-        vb, ib = _snips(log.w_baseline, log.reward)
-        se_c = _mean_se(ic)[1]
-        se_b = _mean_se(ib)[1]
-        diff = ic - ib
-        estimate = vc - vb
-    else:
-        tc = _terms(log, estimator, "c")
-        tb = _terms(log, estimator, "b")
-        vc, se_c = _mean_se(tc)
-        vb, se_b = _mean_se(tb)
-        diff = tc - tb
-        estimate = float(diff.sum()) / n
-    se = _mean_se(diff)[1]
+    vc, vb, se_c, se_b, se = _means(log, estimator)
+    estimate = vc - vb
     name = f"{estimator}-paired"
     if method == "bootstrap":
-        stat = _bootstrap_statistic(log, estimator, diff)
         reps = boot.paired_replicates(
-            stat, n, resamples=resamples, rng=rng or np.random.default_rng(0)
+            _bootstrap_statistic(log, estimator),
+            n,
+            resamples=resamples,
+            rng=rng or np.random.default_rng(0),
         )
         change = bootstrap_change(
             estimate,
@@ -536,13 +681,12 @@ def compare(
     )
 
 
-def _bootstrap_statistic(
-    log: PreparedLog, estimator: Estimator, diff: np.ndarray
-) -> boot.Statistic:
+def _bootstrap_statistic(log: PreparedLog, estimator: Estimator) -> boot.Statistic:
+    tc, tb = log.row_terms(estimator)
     if estimator != "snips":
-        return boot.weighted_mean(diff)  # the mean of per-row differences, resampled
-    r = log.reward
-    return boot.difference(
-        boot.weighted_ratio(log.w_candidate * r, log.w_candidate),
-        boot.weighted_ratio(log.w_baseline * r, log.w_baseline),
+        return boot.weighted_mean(tc - tb)  # the mean of per-row differences, resampled
+    r = log.columns["reward"]
+    return boot.difference(  # SNIPS: the difference of the two resampled ratios
+        boot.weighted_ratio(tc * r, tc),
+        boot.weighted_ratio(tb * r, tb),
     )
