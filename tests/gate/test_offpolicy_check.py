@@ -306,3 +306,15 @@ def test_adaptive_limit_learns_from_the_change() -> None:
 def test_policy_keys_are_checked(check: str, key: str) -> None:
     with pytest.raises(PolicyError, match=key):
         policy(check)
+
+
+def test_overflowing_weights_fail_closed() -> None:
+    columns = logged(16, n=2000)
+    columns["logging_propensity"] = columns["logging_propensity"].copy()
+    columns["logging_propensity"][5] = 1e-300  # in range, but its weight overflows
+    columns["candidate_propensity"] = columns["candidate_propensity"].copy()
+    columns["candidate_propensity"][5] = 1.0
+    verdict = judge(columns, policy(NONINF.format(est="ips"), on_inconclusive="promote"))
+    f = finding(verdict)
+    assert f.outcome == "inconclusive"
+    assert "weights overflow" in f.message and f.details["underpowered"] is True

@@ -35,6 +35,7 @@ snapshot is stored and held: fail closed), and the check itself is inconclusive.
 
 from __future__ import annotations
 
+import math
 import zlib
 from dataclasses import dataclass
 from typing import Any, Literal
@@ -232,6 +233,12 @@ def _unusable(config: OffPolicyConfig, c: OffPolicyComparison) -> list[str]:
     z = normal_quantile(config.confidence)
     for who, side in (("candidate", c.candidate), ("baseline", c.baseline)):
         w = side.weights
+        if not math.isfinite(w.ess):
+            reasons.append(
+                f"underpowered: the {who}'s weights overflow (largest {w.max_weight:.3g}), so "
+                "its effective sample size cannot be computed"
+            )
+            continue
         if w.ess < config.min_ess:
             reasons.append(
                 f"underpowered: the {who}'s effective sample size is {w.ess:.0f} of {w.n} rows, "
