@@ -264,9 +264,88 @@ def also_read(end: datetime, *, hours: int = 36) -> Iterator[DemoEvent]:
             parent = key
 
 
+#: Home-shelf exploration (5% of slots): its pool per slot, the reader's top-50 candidate books,
+#: one shown uniformly at random.
+EXPLORE_POOL = 50
+#: Softmax sharpness turning a model's scores into its slot-level probabilities.
+SHARPNESS = 1.0
+
+
+def with_exploration(events: list[DemoEvent]) -> list[DemoEvent]:
+    """Add the logged exploration slots to every shelf-ranker push (off-policy estimates).
+
+    The bookshop serves 5% of home-shelf slots from a uniformly randomised exploration policy
+    over the reader's top-50 candidate books, and logs each such slot: the book shown, its
+    probability 1/50 (``logging_propensity``), the click (``reward``), and the probability
+    that the candidate and the serving baseline would have put that book in the slot (a
+    softmax of each model's scores over the 50, :data:`SHARPNESS`), with a reward model's
+    prediction and its expectation under each model (doubly robust). Each sample row carries
+    one exploration slot beside the holdout row (the job samples both, equally many).
+
+    One push (note ``off-policy``) looks fine on the on-policy holdout labels but puts its
+    slots on books serving never shows (those the baseline ranks 26th to 50th), which readers
+    click less: the exploration log shows it, and the ``off-policy`` check holds it.
+    """
+    shelf = [i for i, e in enumerate(events) if e.model == "shelf-ranker"]
+    target = next((i for i in shelf[(len(shelf) * 3) // 8 :] if not events[i].note), None)
+    out = []
+    for step, index in enumerate(shelf):
+        event = events[index]
+        bad = index == target
+        columns = _exploration_slots(
+            np.random.default_rng([SEED + 3, step]), len(event.body["sample"]["score"]), bad
+        )
+        body = dict(event.body)
+        body["sample"] = {**event.body["sample"], **columns}
+        out.append(
+            (index, DemoEvent(event.model, event.at, body, "off-policy" if bad else event.note))
+        )
+    result = list(events)
+    for index, event in out:
+        result[index] = event
+    return result
+
+
+def _exploration_slots(rng: np.random.Generator, n: int, never_shown: bool) -> dict[str, list[Any]]:
+    """*n* logged exploration slots of one push (see :func:`with_exploration`)."""
+    k = EXPLORE_POOL
+    appeal = rng.normal(-2.2, 0.8, (n, k))  # logit of a reader clicking each book
+    beliefs = appeal + rng.normal(0.0, 1.0, (n, k))  # what the serving model scores
+    baseline = _softmax_rows(SHARPNESS * beliefs)
+    candidate_scores = SHARPNESS * (beliefs + rng.normal(0.0, 0.1, (n, k)))
+    if never_shown:
+        rank = np.argsort(np.argsort(-beliefs, axis=1), axis=1)  # 0 = serving's first choice
+        candidate_scores = candidate_scores + 4.0 * (rank >= k // 2)
+    candidate = _softmax_rows(candidate_scores)
+    shown = rng.integers(0, k, n)  # uniform exploration over the pool
+    rows = np.arange(n)
+    click = rng.random(n) < _sigmoid(appeal[rows, shown])
+    predicted = _sigmoid(appeal + rng.normal(0.0, 0.3, (n, k)))  # a reward model, not perfect
+
+    def r6(values: np.ndarray) -> list[float]:
+        return [round(float(v), 8) for v in values]
+
+    return {
+        "reward": click.astype(int).tolist(),
+        "logging_propensity": [1.0 / k] * n,
+        "candidate_propensity": r6(candidate[rows, shown]),
+        "baseline_propensity": r6(baseline[rows, shown]),
+        "reward_prediction": r6(predicted[rows, shown]),
+        "candidate_expected_reward": r6((candidate * predicted).sum(axis=1)),
+        "baseline_expected_reward": r6((baseline * predicted).sum(axis=1)),
+    }
+
+
+def _softmax_rows(x: np.ndarray) -> np.ndarray:
+    e = np.exp(x - x.max(axis=1, keepdims=True))
+    out: np.ndarray = e / e.sum(axis=1, keepdims=True)
+    return out
+
+
 def scenario(end: datetime, *, hours: int = 36) -> list[DemoEvent]:
     """Every demo event of both models, in time order."""
-    events = list(shelf_ranker(end, hours=hours)) + list(also_read(end, hours=hours))
+    events = with_exploration(list(shelf_ranker(end, hours=hours)))
+    events += list(also_read(end, hours=hours))
     events.sort(key=lambda e: e.at)
     return events
 

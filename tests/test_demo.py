@@ -26,9 +26,18 @@ def test_demo_holds_the_bad_pushes(make_harness) -> None:  # type: ignore[no-unt
         "stale",
         "recall-drop",
         "popularity-collapse",
+        "off-policy",
     }
     for (_model, _key), (note, verdict) in planted.items():
         assert verdict["decision"] == "hold", (note, verdict["reasons"])
+    # The push that recommends books serving never shows: fine on the on-policy holdout labels,
+    # held by the off-policy estimate on the logged exploration slots.
+    unseen = next(v for note, v in decisions.values() if note == "off-policy")
+    outcomes = {f["check"]: f["outcome"] for f in unseen["findings"]}
+    assert outcomes["auc-vs-baseline"] == "ok" and outcomes["shelf-clicks-offpolicy"] == "breach"
+    assert [f for f in unseen["findings"] if f["outcome"] == "breach"] == [
+        f for f in unseen["findings"] if f["check"] == "shelf-clicks-offpolicy"
+    ]
     collapse = next(v for note, v in decisions.values() if note == "popularity-collapse")
     held_by = {f["check"] for f in collapse["findings"] if f["outcome"] == "breach"}
     assert {"catalog-coverage", "exposure-gini", "shown-popularity"} <= held_by

@@ -14,7 +14,7 @@ import numpy as np
 
 from service.api.schemas import SampleIn
 from service.errors import InvalidInput
-from service.gate.types import NUMERIC_COLUMNS, TEXT_COLUMNS, Sample
+from service.gate.types import LOG_COLUMNS, MODEL_COLUMNS, NUMERIC_COLUMNS, TEXT_COLUMNS, Sample
 from service.settings import Settings
 
 SEGMENT_NAME = re.compile(r"^segment\.[A-Za-z0-9_][A-Za-z0-9_.-]{0,63}$")
@@ -95,6 +95,7 @@ def to_sample(payload: SampleIn, settings: Settings) -> Sample:
                 "must have the same length",
                 field=f"sample.{name}",
             )
+    _log_columns_together(raw)
     columns: dict[str, np.ndarray] = {}
     for name, values in raw.items():
         if name in NUMERIC_COLUMNS:
@@ -116,3 +117,21 @@ def to_sample(payload: SampleIn, settings: Settings) -> Sample:
                 code="duplicate_row_id",
             )
     return Sample(columns)
+
+
+def _log_columns_together(raw: dict[str, list[Any]]) -> None:
+    """The logged-exploration columns come as a set: the four of LOG_COLUMNS together, and
+    the reward model's three (for the doubly robust estimator) only with them, all three."""
+    for group, needs in ((LOG_COLUMNS, ()), (MODEL_COLUMNS, LOG_COLUMNS)):
+        given = [name for name in group if name in raw]
+        if not given:
+            continue
+        missing = [name for name in group + needs if name not in raw]
+        if missing:
+            raise InvalidInput(
+                f"column {given[0]} needs the column {missing[0]}: the logged-exploration "
+                f"columns come together ({', '.join(LOG_COLUMNS)}; and for a reward model "
+                f"{', '.join(MODEL_COLUMNS)})",
+                field=f"sample.{missing[0]}",
+                code="missing_column",
+            )

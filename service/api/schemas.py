@@ -55,6 +55,32 @@ class SampleIn(BaseModel):
     group: list[TextValue] | None = Field(None, description="Query / request / user of the row.")
     item: list[TextValue] | None = Field(None, description="Recommended item of the row.")
     rank: list[Rank] | None = Field(None, description="Position of the item in its group's list.")
+    # Logged exploration (off-policy estimates): one row per logged action. A row whose log
+    # columns are all null is not a logged row. Values out of range are stored and held with
+    # the health finding ``health.log`` (see README, "Off-policy evaluation").
+    reward: list[Number | None] | None = Field(
+        None, description="Logged exploration: the observed reward of the logged action."
+    )
+    logging_propensity: list[Number | None] | None = Field(
+        None,
+        description="Probability the logging policy gave the logged action in its context, "
+        "in (0, 1].",
+    )
+    candidate_propensity: list[Number | None] | None = Field(
+        None, description="Probability the candidate would take the logged action, in [0, 1]."
+    )
+    baseline_propensity: list[Number | None] | None = Field(
+        None, description="Probability the baseline would take the logged action, in [0, 1]."
+    )
+    reward_prediction: list[Number | None] | None = Field(
+        None, description="A reward model's prediction for the logged action (doubly robust)."
+    )
+    candidate_expected_reward: list[Number | None] | None = Field(
+        None, description="That model's expected reward under the candidate in the row's context."
+    )
+    baseline_expected_reward: list[Number | None] | None = Field(
+        None, description="That model's expected reward under the baseline in the row's context."
+    )
 
 
 class SnapshotCreate(BaseModel):

@@ -29,6 +29,7 @@ from service.gate.checks import REGISTRY, CheckConfig, CheckContext
 from service.gate.checks.base import skipped
 from service.gate.checks.health import health_findings
 from service.gate.checks.lineage import lineage_findings
+from service.gate.checks.offpolicy import log_health_findings
 from service.gate.history import stuck_state
 from service.gate.policy import Policy
 from service.gate.types import Finding, GateInput, Verdict
@@ -150,6 +151,8 @@ def evaluate(inp: GateInput, policy: Policy | None) -> Verdict:
         )
     findings: list[Finding] = []
     findings.extend(health_findings(policy.sample, inp.candidate))
+    if any(config.kind == "off-policy" for config in policy.checks):
+        findings.extend(log_health_findings(inp.candidate))  # the exploration log's health
     findings.extend(lineage_findings(policy.lineage, inp))
     for config in policy.checks:
         findings.extend(_run_check(config, inp, policy))

@@ -19,6 +19,9 @@ from typing import Any, Literal
 
 import numpy as np
 
+from service.stats.offpolicy import LOG_COLUMNS as LOG_COLUMNS
+from service.stats.offpolicy import MODEL_COLUMNS as MODEL_COLUMNS
+
 Outcome = Literal["ok", "breach", "advisory", "inconclusive", "skipped"]
 Decision = Literal["promote", "hold"]
 
@@ -26,7 +29,11 @@ OUTCOMES: tuple[Outcome, ...] = ("ok", "breach", "advisory", "inconclusive", "sk
 DECISIONS: tuple[Decision, ...] = ("promote", "hold")
 
 #: Columns with a fixed meaning; any other column must be named ``segment.<name>``.
-NUMERIC_COLUMNS = ("score", "label", "baseline_score", "served_score", "rank")
+# The logged-exploration columns (off-policy estimates) are declared with their estimators:
+# LOG_COLUMNS (reward and the three propensities), MODEL_COLUMNS (a reward model's, optional).
+NUMERIC_COLUMNS = (
+    ("score", "label", "baseline_score", "served_score", "rank") + LOG_COLUMNS + MODEL_COLUMNS
+)
 TEXT_COLUMNS = ("row_id", "group", "item")
 KNOWN_COLUMNS = NUMERIC_COLUMNS + TEXT_COLUMNS
 SEGMENT_PREFIX = "segment."
@@ -52,9 +59,10 @@ def json_safe(value: Any) -> Any:
 class Sample:
     """A columnar sample: one array per column, all of one length.
 
-    Numeric columns (``score``, ``label``, ``baseline_score``, ``served_score``, ``rank``) are
-    float64 arrays (non-finite values kept as NaN/inf: the model produced them); text columns
-    (``row_id``, ``group``, ``item`` and every ``segment.<name>``) are object arrays of ``str``.
+    Numeric columns (``score``, ``label``, ``baseline_score``, ``served_score``, ``rank`` and the
+    logged-exploration columns :data:`LOG_COLUMNS`, :data:`MODEL_COLUMNS`) are float64 arrays
+    (non-finite values kept as NaN/inf: the model produced them); text columns (``row_id``,
+    ``group``, ``item`` and every ``segment.<name>``) are object arrays of ``str``.
     """
 
     columns: Mapping[str, np.ndarray]
