@@ -204,6 +204,7 @@ class Bench:
         compact = "finding_values" in inspect(self.engine).get_table_names()
         if compact:
             from service.store import history_values
+            from service.store.tables import FindingValueRow
         with self.engine.begin() as conn:
             model_id = conn.scalar(select(ModelRow.id).where(ModelRow.name == MODEL))
             snap_id = int(conn.scalar(select(func.max(SnapshotRow.id))) or 0)
@@ -272,7 +273,6 @@ class Bench:
                                 verdict_id=verdict_id,
                                 model_id=model_id,
                                 findings=t["findings"],
-                                created_at=at,
                             )
                         )
                 conn.execute(insert(SnapshotRow), snaps)
@@ -280,7 +280,7 @@ class Bench:
                 if promos:
                     conn.execute(insert(PromotionRow), promos)
                 if values:
-                    conn.execute(insert(history_values.FindingValueRow), values)
+                    conn.execute(insert(FindingValueRow), values)
         return time.perf_counter() - started
 
 

@@ -12,14 +12,14 @@ from dataclasses import dataclass
 from datetime import UTC, datetime
 from typing import Any
 
-from sqlalchemy import Select, func, or_, select
+from sqlalchemy import Select, func, select
 from sqlalchemy.dialects.postgresql import insert as pg_insert
 from sqlalchemy.dialects.sqlite import insert as sqlite_insert
-from sqlalchemy.orm import Session
+from sqlalchemy.orm import Session, defer
 
 from service.gate.policy import Policy
 from service.gate.types import HistoryEntry, Sample, SampleSummary, Snapshot, Verdict
-from service.store import codec
+from service.store import codec, history_values
 from service.store.tables import (
     AuditRow,
     ModelRow,
@@ -236,6 +236,7 @@ def add_verdict(
     )
     session.add(row)
     session.flush()
+    history_values.add(session, verdict_id=row.id, model_id=model_id, findings=row.findings)
     return row
 
 
@@ -306,11 +307,17 @@ def list_verdicts(
     limit: int = 50,
     before_id: int | None = None,
 ) -> tuple[list[tuple[VerdictRow, SnapshotRow]], int | None]:
-    """Verdicts newest first, and the id to continue before (None on the last page)."""
+    """Verdicts newest first, and the id to continue before (None on the last page).
+
+    The verdicts' ``findings`` are not loaded (a listing never shows them; their numbers are
+    in ``finding_values``, see :mod:`service.store.history_values`); nor are the snapshots'
+    metrics, tags and score summaries, which load on first access.
+    """
     stmt: Select[VerdictRow, SnapshotRow] = (
         select(VerdictRow, SnapshotRow)
         .join(SnapshotRow, SnapshotRow.id == VerdictRow.snapshot_id)
         .where(VerdictRow.model_id == model_id)
+        .options(defer(VerdictRow.findings))
     )
     if decision is not None:
         stmt = stmt.where(VerdictRow.decision == decision)
@@ -427,15 +434,19 @@ def _promotion_state(session: Session, *, model_id: int, snapshot_ids: Sequence[
     if not snapshot_ids:
         return _Promoted(ever, rolled_back)
     ids = list(snapshot_ids)
-    for snapshot_id, previous_id, cause in session.execute(
-        select(PromotionRow.snapshot_id, PromotionRow.previous_id, PromotionRow.cause).where(
-            PromotionRow.model_id == model_id,
-            or_(PromotionRow.snapshot_id.in_(ids), PromotionRow.previous_id.in_(ids)),
+    # Two lookups by index (promotions by snapshot, rollbacks by the snapshot they replaced):
+    # they touch only these snapshots' rows, however many promotions the model has (a
+    # snapshot belongs to one model, so *model_id* needs no condition of its own).
+    ever.update(
+        session.scalars(select(PromotionRow.snapshot_id).where(PromotionRow.snapshot_id.in_(ids)))
+    )
+    rolled_back.update(
+        session.scalars(
+            select(PromotionRow.previous_id).where(
+                PromotionRow.previous_id.in_(ids), PromotionRow.cause == "rollback"
+            )
         )
-    ):
-        ever.add(snapshot_id)
-        if cause == "rollback" and previous_id is not None:
-            rolled_back.add(previous_id)
+    )
     return _Promoted(ever, rolled_back)
 
 
@@ -452,40 +463,63 @@ def history(
     """
     if limit <= 0:
         return ()
+    # Only the columns the gate needs: never the findings (their values come from
+    # finding_values in one index range), so the cost does not grow with what they hold.
     stmt = (
-        select(VerdictRow, SnapshotRow)
+        select(
+            VerdictRow.id,
+            VerdictRow.decision,
+            VerdictRow.created_at,
+            SnapshotRow.id,
+            SnapshotRow.key,
+            SnapshotRow.rows_trained,
+            SnapshotRow.trained_until,
+        )
         .join(SnapshotRow, SnapshotRow.id == VerdictRow.snapshot_id)
         .where(VerdictRow.model_id == model_id)
     )
     if before_id is not None:
         stmt = stmt.where(VerdictRow.id < before_id)
     rows = session.execute(stmt.order_by(VerdictRow.id.desc()).limit(limit)).all()
-    overrides = overrides_for(session, verdict_ids=[v.id for v, _ in rows])
-    state = _promotion_state(session, model_id=model_id, snapshot_ids=[s.id for _, s in rows])
+    ids = [r[0] for r in rows]
+    decided = _effective_decisions(session, verdict_ids=ids)
+    values = history_values.values_by_verdict(session, model_id=model_id, verdict_ids=ids)
+    state = _promotion_state(session, model_id=model_id, snapshot_ids=[r[3] for r in rows])
     entries = []
-    for verdict, snap in rows:
-        effective = effective_decision(verdict, overrides[verdict.id])
-        values = {
-            f["check"]: float(f["value"])
-            for f in verdict.findings
-            if isinstance(f, dict) and f.get("value") is not None
-        }
+    for verdict_id, decision, created_at, snapshot_id, key, rows_trained, trained_until in rows:
+        effective = decided.get(verdict_id, decision)
         healthy = (
-            effective == "promote" and snap.id in state.ever and snap.id not in state.rolled_back
+            effective == "promote"
+            and snapshot_id in state.ever
+            and snapshot_id not in state.rolled_back
         )
         entries.append(
             HistoryEntry(
-                snapshot_key=snap.key,
-                created_at=utc(verdict.created_at),  # type: ignore[arg-type]
-                decision=verdict.decision,  # type: ignore[arg-type]
+                snapshot_key=key,
+                created_at=utc(created_at),  # type: ignore[arg-type]
+                decision=decision,  # type: ignore[arg-type]
                 effective_decision=effective,  # type: ignore[arg-type]
                 healthy=healthy,
-                rows_trained=snap.rows_trained,
-                trained_until=utc(snap.trained_until),
-                values=values,
+                rows_trained=rows_trained,
+                trained_until=utc(trained_until),
+                values=values[verdict_id],
             )
         )
     return tuple(entries)
+
+
+def _effective_decisions(session: Session, *, verdict_ids: Sequence[int]) -> dict[int, str]:
+    """The latest override's decision of each overridden verdict among *verdict_ids*."""
+    if not verdict_ids:
+        return {}
+    out: dict[int, str] = {}
+    for verdict_id, decision in session.execute(
+        select(OverrideRow.verdict_id, OverrideRow.decision)
+        .where(OverrideRow.verdict_id.in_(list(verdict_ids)))
+        .order_by(OverrideRow.id)
+    ):
+        out[verdict_id] = decision
+    return out
 
 
 # --- audit --------------------------------------------------------------------------------
