@@ -5,10 +5,10 @@ Run: ``python bench/history.py`` (or ``--sizes 1000,10000`` for a shorter run).
 A fresh SQLite database gets one model, ``bench-shelf``, with a small paired policy (PSI with a
 learned limit, KS, paired AUC by DeLong with a segment column and Holm, paired mean change).
 The first verdicts are real posts over HTTP; the database is then filled in bulk to each size
-by copying those verdicts' stored rows (snapshot, verdict with its findings, promotion, and the
-compact per-check values) under new keys, as if the model had been posting for months. At each
-size the real service (``tidegate serve`` in a subprocess, one worker, keep-alive HTTP client)
-answers, each timed from the client:
+by copying those verdicts' stored rows (snapshot, verdict with its findings, promotion, the
+gate's audit entry, and the compact per-check values) under new keys, as if the model had been
+posting for months. At each size the real service (``tidegate serve`` in a subprocess, one
+worker, keep-alive HTTP client) answers, each timed from the client:
 
 - ``GET /healthz`` (the reference every other time is divided by);
 - a tiny post (50 rows) and a 2,000-row post: p50 and the ratio to the same post at the first
@@ -45,6 +45,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 from service.settings import Settings  # noqa: E402
 from service.store import db as store_db  # noqa: E402
 from service.store.tables import (  # noqa: E402
+    AuditRow,
     ModelRow,
     PromotionRow,
     SnapshotRow,
@@ -212,7 +213,7 @@ class Bench:
             now = datetime.now(UTC)
             batch = 5000
             for first in range(0, need, batch):
-                snaps, verdicts, promos, values = [], [], [], []
+                snaps, verdicts, promos, audits, values = [], [], [], [], []
                 for i in range(first, min(need, first + batch)):
                     t = self.templates[i % len(self.templates)]
                     snap_id += 1
@@ -267,6 +268,18 @@ class Bench:
                                 "created_at": at,
                             }
                         )
+                        audits.append(
+                            {
+                                "at": at,
+                                "actor": "gate",
+                                "action": "baseline.verdict",
+                                "model": MODEL,
+                                "target": f"bulk-{snap_id:08d}",
+                                "before": None,
+                                "after": {"verdict_id": verdict_id},
+                                "reason": "promoted by verdict",
+                            }
+                        )
                     if compact:
                         values.extend(
                             history_values.rows_for(
@@ -279,6 +292,7 @@ class Bench:
                 conn.execute(insert(VerdictRow), verdicts)
                 if promos:
                     conn.execute(insert(PromotionRow), promos)
+                    conn.execute(insert(AuditRow), audits)
                 if values:
                     conn.execute(insert(FindingValueRow), values)
         return time.perf_counter() - started

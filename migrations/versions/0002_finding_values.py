@@ -4,7 +4,7 @@ Creates ``finding_values`` (one row per verdict per finding: identity, outcome, 
 p-value, both sides, interval ends, ``details["learn"]``), fills it from the findings of every
 stored verdict, and adds the indexes the history reads use: recent holds per model
 (``verdicts``: model, decision, created_at), promotions by snapshot, by replaced snapshot and
-by model and time.
+by model and time, and audit entries by model and actor.
 
 Revision ID: 0002
 Revises: 0001
@@ -123,6 +123,8 @@ def upgrade() -> None:
         batch_op.create_index(
             batch_op.f("ix_promotions_snapshot_id"), ["snapshot_id"], unique=False
         )
+    with op.batch_alter_table("audit_log", schema=None) as batch_op:
+        batch_op.create_index("ix_audit_log_model_actor", ["model", "actor", "id"], unique=False)
     with op.batch_alter_table("verdicts", schema=None) as batch_op:
         batch_op.create_index(
             "ix_verdicts_model_decision_created",
@@ -157,6 +159,8 @@ def upgrade() -> None:
 
 
 def downgrade() -> None:
+    with op.batch_alter_table("audit_log", schema=None) as batch_op:
+        batch_op.drop_index("ix_audit_log_model_actor")
     with op.batch_alter_table("verdicts", schema=None) as batch_op:
         batch_op.drop_index("ix_verdicts_model_decision_created")
     with op.batch_alter_table("promotions", schema=None) as batch_op:

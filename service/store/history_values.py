@@ -20,14 +20,16 @@ from __future__ import annotations
 import math
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, cast
 
-from sqlalchemy import insert, select
+from sqlalchemy import Table, insert, select
 from sqlalchemy.orm import Session
 
 from service.store.tables import FindingValueRow
 
-NUMBERS = ("value", "limit", "pvalue", "baseline_value", "candidate_value")
+#: The table itself: reads select its columns directly (Core rows, no ORM loading), which is
+#: most of their cost at a few thousand rows per post.
+VALUES = cast(Table, FindingValueRow.__table__)
 
 
 def _number(value: Any) -> float | None:
@@ -89,16 +91,22 @@ def add(
     """Store the numbers of a new verdict's findings (one multi-row insert; no commit)."""
     rows = rows_for(verdict_id=verdict_id, model_id=model_id, findings=findings)
     if rows:
-        session.execute(insert(FindingValueRow), rows)
+        session.execute(insert(VALUES), rows)
 
 
 def _range(model_id: int, verdict_ids: Sequence[int]) -> Any:
-    """One index range over the model's rows that covers *verdict_ids*."""
+    """One index range over the model's rows that covers *verdict_ids* (rows of other
+    verdicts in the range are skipped by the callers)."""
     return (
-        (FindingValueRow.model_id == model_id)
-        & (FindingValueRow.verdict_id >= min(verdict_ids))
-        & (FindingValueRow.verdict_id <= max(verdict_ids))
+        (VALUES.c.model_id == model_id)
+        & (VALUES.c.verdict_id >= min(verdict_ids))
+        & (VALUES.c.verdict_id <= max(verdict_ids))
     )
+
+
+#: Index order: by verdict, then by row id, which is the findings' order (written in one
+#: insert, in order), so no sort is needed.
+_ORDER = (VALUES.c.verdict_id, VALUES.c.id)
 
 
 def values_by_verdict(
@@ -111,14 +119,16 @@ def values_by_verdict(
     if not verdict_ids:
         return out
     stmt = (
-        select(FindingValueRow.verdict_id, FindingValueRow.check_name, FindingValueRow.value)
-        .where(_range(model_id, verdict_ids), FindingValueRow.value.is_not(None))
-        .order_by(FindingValueRow.verdict_id, FindingValueRow.position)
+        select(VALUES.c.verdict_id, VALUES.c.check_name, VALUES.c.value)
+        .where(_range(model_id, verdict_ids), VALUES.c.value.is_not(None))
+        .order_by(*_ORDER)
     )
-    for verdict_id, check, value in session.execute(stmt):
-        found = out.get(verdict_id)
-        if found is not None and value is not None:
-            found[check] = float(value)
+    current, found = None, None
+    for verdict_id, check, value in session.execute(stmt).all():
+        if verdict_id != current:
+            current, found = verdict_id, out.get(verdict_id)
+        if found is not None:
+            found[check] = value
     return out
 
 
@@ -190,11 +200,7 @@ def quantities(
     out: dict[int, list[Quantities]] = {vid: [] for vid in verdict_ids}
     if not verdict_ids:
         return out
-    rows = session.execute(
-        select(FindingValueRow.__table__)
-        .where(_range(model_id, verdict_ids))
-        .order_by(FindingValueRow.verdict_id, FindingValueRow.position)
-    )
+    rows = session.execute(select(VALUES).where(_range(model_id, verdict_ids)).order_by(*_ORDER))
     for verdict_id, q in _quantities(rows):
         if verdict_id in out:
             out[verdict_id].append(q)

@@ -8,11 +8,10 @@ from __future__ import annotations
 
 import base64
 from collections.abc import Sequence
-from dataclasses import dataclass
 from datetime import UTC, datetime
 from typing import Any
 
-from sqlalchemy import Select, func, select
+from sqlalchemy import Select, exists, func, or_, select
 from sqlalchemy.dialects.postgresql import insert as pg_insert
 from sqlalchemy.dialects.sqlite import insert as sqlite_insert
 from sqlalchemy.orm import Session, defer
@@ -421,35 +420,6 @@ def promotions(session: Session, *, model_id: int, limit: int = 100) -> Sequence
 # --- history for the gate -----------------------------------------------------------------
 
 
-@dataclass(frozen=True)
-class _Promoted:
-    ever: set[int]
-    rolled_back: set[int]
-
-
-def _promotion_state(session: Session, *, model_id: int, snapshot_ids: Sequence[int]) -> _Promoted:
-    """Which of *snapshot_ids* were ever promoted, and which a rollback replaced."""
-    ever: set[int] = set()
-    rolled_back: set[int] = set()
-    if not snapshot_ids:
-        return _Promoted(ever, rolled_back)
-    ids = list(snapshot_ids)
-    # Two lookups by index (promotions by snapshot, rollbacks by the snapshot they replaced):
-    # they touch only these snapshots' rows, however many promotions the model has (a
-    # snapshot belongs to one model, so *model_id* needs no condition of its own).
-    ever.update(
-        session.scalars(select(PromotionRow.snapshot_id).where(PromotionRow.snapshot_id.in_(ids)))
-    )
-    rolled_back.update(
-        session.scalars(
-            select(PromotionRow.previous_id).where(
-                PromotionRow.previous_id.in_(ids), PromotionRow.cause == "rollback"
-            )
-        )
-    )
-    return _Promoted(ever, rolled_back)
-
-
 def history(
     session: Session, *, model_id: int, limit: int, before_id: int | None = None
 ) -> tuple[HistoryEntry, ...]:
@@ -463,63 +433,58 @@ def history(
     """
     if limit <= 0:
         return ()
-    # Only the columns the gate needs: never the findings (their values come from
-    # finding_values in one index range), so the cost does not grow with what they hold.
+    # One query, only the columns the gate needs: never the findings (their values come from
+    # finding_values in one index range), so the cost does not grow with what they hold. The
+    # latest override and whether the snapshot was promoted or replaced by a rollback are
+    # subqueries answered by the indexes on overrides.verdict_id, promotions.snapshot_id and
+    # promotions.previous_id. Core columns: plain rows, no ORM loading.
+    v, s = VerdictRow.__table__, SnapshotRow.__table__
+    o, p = OverrideRow.__table__, PromotionRow.__table__
+    override = (
+        select(o.c.decision)
+        .where(o.c.verdict_id == v.c.id)
+        .order_by(o.c.id.desc())
+        .limit(1)
+        .scalar_subquery()
+    )
+    promoted = exists().where(p.c.snapshot_id == s.c.id)
+    rolled_back = exists().where(p.c.previous_id == s.c.id, p.c.cause == "rollback")
     stmt = (
-        select(
-            VerdictRow.id,
-            VerdictRow.decision,
-            VerdictRow.created_at,
-            SnapshotRow.id,
-            SnapshotRow.key,
-            SnapshotRow.rows_trained,
-            SnapshotRow.trained_until,
-        )
-        .join(SnapshotRow, SnapshotRow.id == VerdictRow.snapshot_id)
-        .where(VerdictRow.model_id == model_id)
+        select(v.c.id, v.c.decision, v.c.created_at, s.c.key, s.c.rows_trained)
+        .add_columns(s.c.trained_until, override, promoted, rolled_back)
+        .join_from(v, s, s.c.id == v.c.snapshot_id)
+        .where(v.c.model_id == model_id)
     )
     if before_id is not None:
-        stmt = stmt.where(VerdictRow.id < before_id)
-    rows = session.execute(stmt.order_by(VerdictRow.id.desc()).limit(limit)).all()
-    ids = [r[0] for r in rows]
-    decided = _effective_decisions(session, verdict_ids=ids)
-    values = history_values.values_by_verdict(session, model_id=model_id, verdict_ids=ids)
-    state = _promotion_state(session, model_id=model_id, snapshot_ids=[r[3] for r in rows])
-    entries = []
-    for verdict_id, decision, created_at, snapshot_id, key, rows_trained, trained_until in rows:
-        effective = decided.get(verdict_id, decision)
-        healthy = (
-            effective == "promote"
-            and snapshot_id in state.ever
-            and snapshot_id not in state.rolled_back
+        stmt = stmt.where(v.c.id < before_id)
+    rows = session.execute(stmt.order_by(v.c.id.desc()).limit(limit)).all()
+    values = history_values.values_by_verdict(
+        session, model_id=model_id, verdict_ids=[r[0] for r in rows]
+    )
+    return tuple(
+        HistoryEntry(
+            snapshot_key=key,
+            created_at=utc(created_at),  # type: ignore[arg-type]
+            decision=decision,
+            effective_decision=overridden or decision,
+            # healthy: promote in the end, became the baseline, not rolled back
+            healthy=(overridden or decision) == "promote" and bool(ever) and not bool(undone),
+            rows_trained=rows_trained,
+            trained_until=utc(trained_until),
+            values=values[verdict_id],
         )
-        entries.append(
-            HistoryEntry(
-                snapshot_key=key,
-                created_at=utc(created_at),  # type: ignore[arg-type]
-                decision=decision,  # type: ignore[arg-type]
-                effective_decision=effective,  # type: ignore[arg-type]
-                healthy=healthy,
-                rows_trained=rows_trained,
-                trained_until=utc(trained_until),
-                values=values[verdict_id],
-            )
-        )
-    return tuple(entries)
-
-
-def _effective_decisions(session: Session, *, verdict_ids: Sequence[int]) -> dict[int, str]:
-    """The latest override's decision of each overridden verdict among *verdict_ids*."""
-    if not verdict_ids:
-        return {}
-    out: dict[int, str] = {}
-    for verdict_id, decision in session.execute(
-        select(OverrideRow.verdict_id, OverrideRow.decision)
-        .where(OverrideRow.verdict_id.in_(list(verdict_ids)))
-        .order_by(OverrideRow.id)
-    ):
-        out[verdict_id] = decision
-    return out
+        for (
+            verdict_id,
+            decision,
+            created_at,
+            key,
+            rows_trained,
+            trained_until,
+            overridden,
+            ever,
+            undone,
+        ) in rows
+    )
 
 
 # --- audit --------------------------------------------------------------------------------
@@ -565,7 +530,9 @@ def list_audit(
     if model is not None:
         stmt = stmt.where(AuditRow.model == model)
     if exclude_actor is not None:
-        stmt = stmt.where(AuditRow.actor != exclude_actor)
+        # Two ranges of ix_audit_log_model_actor rather than "!=", which no index serves:
+        # the entries of a busy model are mostly the gate's own.
+        stmt = stmt.where(or_(AuditRow.actor < exclude_actor, AuditRow.actor > exclude_actor))
     if before_id is not None:
         stmt = stmt.where(AuditRow.id < before_id)
     return session.scalars(stmt.order_by(AuditRow.id.desc()).limit(limit)).all()

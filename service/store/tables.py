@@ -175,6 +175,10 @@ class AuditRow(Base):
     """Every state change: who, what, when, before and after."""
 
     __tablename__ = "audit_log"
+    __table_args__ = (
+        # A model's entries by actor: the model page leaves out the gate's own entries.
+        Index("ix_audit_log_model_actor", "model", "actor", "id"),
+    )
 
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
     at: Mapped[datetime] = mapped_column(DateTime(timezone=True), index=True)
