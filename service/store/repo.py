@@ -305,18 +305,24 @@ def list_verdicts(
     until: datetime | None = None,
     limit: int = 50,
     before_id: int | None = None,
+    details: bool = False,
 ) -> tuple[list[tuple[VerdictRow, SnapshotRow]], int | None]:
     """Verdicts newest first, and the id to continue before (None on the last page).
 
     The verdicts' ``findings`` are not loaded (a listing never shows them; their numbers are
-    in ``finding_values``, see :mod:`service.store.history_values`); nor are the snapshots'
-    metrics, tags and score summaries, which load on first access.
+    in ``finding_values``, see :mod:`service.store.history_values`); nor, unless *details*,
+    are the snapshots' metrics, tags and score summaries (loaded on first access while the
+    session is open).
     """
+    options = [defer(VerdictRow.findings)]
+    if not details:
+        options += [defer(SnapshotRow.metrics), defer(SnapshotRow.tags)]
+        options += [defer(SnapshotRow.summary)]
     stmt: Select[VerdictRow, SnapshotRow] = (
         select(VerdictRow, SnapshotRow)
         .join(SnapshotRow, SnapshotRow.id == VerdictRow.snapshot_id)
         .where(VerdictRow.model_id == model_id)
-        .options(defer(VerdictRow.findings))
+        .options(*options)
     )
     if decision is not None:
         stmt = stmt.where(VerdictRow.decision == decision)

@@ -176,7 +176,7 @@ def model_context(
     session: Session, *, row: ModelRow, now: datetime, policies: Any, before: str | None
 ) -> dict[str, Any]:
     view = views.model_view(session, model=row, now=now, policies=policies)
-    window, _ = repo.list_verdicts(session, model_id=row.id, limit=WINDOW)
+    window, _ = repo.list_verdicts(session, model_id=row.id, limit=WINDOW, details=True)
     before_id = None
     if before:
         try:
