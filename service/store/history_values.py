@@ -210,9 +210,33 @@ def quantities(
 def trend_findings(
     session: Session, *, model_id: int, verdict_ids: Sequence[int]
 ) -> dict[int, list[dict[str, Any]]]:
-    """verdict id -> its findings' numbers in the stored findings' dict form (what the model
-    page's trends read), without decoding the verdicts' findings."""
-    return {
-        vid: [q.as_finding() for q in found]
-        for vid, found in quantities(session, model_id=model_id, verdict_ids=verdict_ids).items()
-    }
+    """verdict id -> its findings' numbers in the stored findings' dict form, with the keys
+    the model page's trends read (check, kind, statistic, outcome, value, limit,
+    baseline_value), without decoding the verdicts' findings."""
+    out: dict[int, list[dict[str, Any]]] = {vid: [] for vid in verdict_ids}
+    if not verdict_ids:
+        return out
+    c = VALUES.c
+    stmt = (
+        select(c.verdict_id, c.check_name, c.kind, c.statistic, c.outcome, c.value)
+        .add_columns(c.limit_value, c.baseline_value)
+        .where(_range(model_id, verdict_ids))
+        .order_by(*_ORDER)
+    )
+    for verdict_id, check, kind, statistic, outcome, value, limit, base in session.execute(
+        stmt
+    ).all():
+        found = out.get(verdict_id)
+        if found is not None:
+            found.append(
+                {
+                    "check": check,
+                    "kind": kind,
+                    "statistic": statistic,
+                    "outcome": outcome,
+                    "value": value,
+                    "limit": limit,
+                    "baseline_value": base,
+                }
+            )
+    return out
