@@ -70,7 +70,7 @@ def replay(
     model = repo.get_model(session, name=model_name)
     if model is None:
         raise NotFound(f"no model {model_name!r}", field="model")
-    pairs, _ = repo.list_verdicts(session, model_id=model.id, limit=limit)
+    pairs, _ = repo.list_verdicts(session, model_id=model.id, limit=limit, details=True)
     pairs.reverse()
     overrides = repo.overrides_for(session, verdict_ids=[v.id for v, _ in pairs])
     result = ReplayResult(model_name, policy.name, policy.digest)

@@ -58,16 +58,19 @@ class BinnedDistance:
 
 
 def _shared_bins(
-    base: np.ndarray, cand: np.ndarray, bins: int
+    base: np.ndarray, cand: np.ndarray, bins: int, presorted: bool = False
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    base = np.sort(base)
+    if not presorted:
+        base = np.sort(base)
     edges = quantile_edges(base, bins)
     base_counts = binned_counts(base, edges, presorted=True)
-    cand_counts = binned_counts(cand, edges)
+    cand_counts = binned_counts(cand, edges, presorted=presorted)
     return edges, base_counts.astype(np.float64), cand_counts.astype(np.float64)
 
 
-def jensen_shannon(baseline: object, candidate: object, *, bins: int = 10) -> BinnedDistance:
+def jensen_shannon(
+    baseline: object, candidate: object, *, bins: int = 10, presorted: bool = False
+) -> BinnedDistance:
     """Jensen–Shannon distance between the binned distributions, base-2 logarithms [1].
 
     Parameters
@@ -76,6 +79,8 @@ def jensen_shannon(baseline: object, candidate: object, *, bins: int = 10) -> Bi
         Finite values; each needs at least ``bins`` values.
     bins : int, default 10
         Equal-mass bins cut at the baseline's quantiles (the same bins as PSI), shared by both.
+    presorted : bool, default False
+        Both are already in ascending order (skips the sorts; same result).
 
     Returns
     -------
@@ -89,7 +94,7 @@ def jensen_shannon(baseline: object, candidate: object, *, bins: int = 10) -> Bi
         raise ValueError(f"bins must be an integer from 2 to 1000, got {bins!r}")
     base = finite_1d(baseline, "baseline", min_size=bins)
     cand = finite_1d(candidate, "candidate", min_size=bins)
-    edges, bc, cc = _shared_bins(base, cand, bins)
+    edges, bc, cc = _shared_bins(base, cand, bins, presorted)
     p = bc / bc.sum()
     q = cc / cc.sum()
     m = 0.5 * (p + q)
@@ -129,19 +134,25 @@ def spread_of(values: np.ndarray, spread: Spread) -> float:
     return value
 
 
-def wasserstein(baseline: object, candidate: object, *, spread: Spread = "std") -> DistanceResult:
+def wasserstein(
+    baseline: object, candidate: object, *, spread: Spread = "std", presorted: bool = False
+) -> DistanceResult:
     """Wasserstein-1 distance divided by the baseline's spread [3].
 
     ``W1 = integral |F(x) - G(x)| dx`` between the two empirical distribution functions, the
     same value as ``scipy.stats.wasserstein_distance``; divided by the baseline's standard
     deviation (``spread="std"``, ddof=1) or interquartile range (``"iqr"``), so 0.1 means "the
     mass moved a tenth of the baseline's spread on average", whatever the score's scale.
-    No p-value (None).
+    No p-value (None). ``presorted=True`` says both are already in ascending order (skips
+    the sorts; same result).
     """
-    base = np.sort(finite_1d(baseline, "baseline", min_size=2))
-    cand = np.sort(finite_1d(candidate, "candidate"))
+    base = finite_1d(baseline, "baseline", min_size=2)
+    cand = finite_1d(candidate, "candidate")
+    if not presorted:
+        base, cand = np.sort(base), np.sort(cand)
     scale = spread_of(base, spread)
-    grid = np.sort(np.concatenate([base, cand]))
+    # Two sorted runs: a stable sort (timsort) merges them in linear time.
+    grid = np.sort(np.concatenate([base, cand]), kind="stable")
     deltas = np.diff(grid)
     # Both ECDFs on each interval [grid_i, grid_i+1); the queries are sorted, so the binary
     # searches run in near-linear time.
@@ -190,13 +201,15 @@ def _ad_inf_cdf(z: float) -> float:
     )
 
 
-def anderson_ksamp(*samples: object) -> ADResult:
+def anderson_ksamp(*samples: object, presorted: bool = False) -> ADResult:
     """Anderson–Darling k-sample test, midrank form ``A2akN`` for ties (eq. 7 of [4]).
 
     Parameters
     ----------
     *samples : array_like
         Two or more samples of finite values; more than one distinct value overall.
+    presorted : bool, default False
+        Every sample is already in ascending order (skips their sorts; same result).
 
     Returns
     -------
@@ -215,10 +228,13 @@ def anderson_ksamp(*samples: object) -> ADResult:
     """
     if len(samples) < 2:
         raise ValueError("anderson_ksamp needs at least two samples")
-    arrays = [np.sort(finite_1d(s, f"sample {i + 1}")) for i, s in enumerate(samples)]
+    arrays = [finite_1d(s, f"sample {i + 1}") for i, s in enumerate(samples)]
+    if not presorted:
+        arrays = [np.sort(a) for a in arrays]
     k = len(arrays)
     n = np.array([a.size for a in arrays], dtype=np.float64)
-    z = np.sort(np.concatenate(arrays))
+    # Sorted runs: a stable sort (timsort) merges them in linear time.
+    z = np.sort(np.concatenate(arrays), kind="stable")
     total = z.size
     big_n = float(total)
     new = np.empty(total, dtype=bool)

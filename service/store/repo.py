@@ -8,18 +8,17 @@ from __future__ import annotations
 
 import base64
 from collections.abc import Sequence
-from dataclasses import dataclass
 from datetime import UTC, datetime
 from typing import Any
 
-from sqlalchemy import Select, func, or_, select
+from sqlalchemy import Select, exists, func, or_, select
 from sqlalchemy.dialects.postgresql import insert as pg_insert
 from sqlalchemy.dialects.sqlite import insert as sqlite_insert
-from sqlalchemy.orm import Session
+from sqlalchemy.orm import Session, defer
 
 from service.gate.policy import Policy
 from service.gate.types import HistoryEntry, Sample, SampleSummary, Snapshot, Verdict
-from service.store import codec
+from service.store import codec, history_values
 from service.store.tables import (
     AuditRow,
     ModelRow,
@@ -236,6 +235,7 @@ def add_verdict(
     )
     session.add(row)
     session.flush()
+    history_values.add(session, verdict_id=row.id, model_id=model_id, findings=row.findings)
     return row
 
 
@@ -305,12 +305,24 @@ def list_verdicts(
     until: datetime | None = None,
     limit: int = 50,
     before_id: int | None = None,
+    details: bool = False,
 ) -> tuple[list[tuple[VerdictRow, SnapshotRow]], int | None]:
-    """Verdicts newest first, and the id to continue before (None on the last page)."""
+    """Verdicts newest first, and the id to continue before (None on the last page).
+
+    The verdicts' ``findings`` are not loaded (a listing never shows them; their numbers are
+    in ``finding_values``, see :mod:`service.store.history_values`); nor, unless *details*,
+    are the snapshots' metrics, tags and score summaries (loaded on first access while the
+    session is open).
+    """
+    options = [defer(VerdictRow.findings)]
+    if not details:
+        options += [defer(SnapshotRow.metrics), defer(SnapshotRow.tags)]
+        options += [defer(SnapshotRow.summary)]
     stmt: Select[VerdictRow, SnapshotRow] = (
         select(VerdictRow, SnapshotRow)
         .join(SnapshotRow, SnapshotRow.id == VerdictRow.snapshot_id)
         .where(VerdictRow.model_id == model_id)
+        .options(*options)
     )
     if decision is not None:
         stmt = stmt.where(VerdictRow.decision == decision)
@@ -414,31 +426,6 @@ def promotions(session: Session, *, model_id: int, limit: int = 100) -> Sequence
 # --- history for the gate -----------------------------------------------------------------
 
 
-@dataclass(frozen=True)
-class _Promoted:
-    ever: set[int]
-    rolled_back: set[int]
-
-
-def _promotion_state(session: Session, *, model_id: int, snapshot_ids: Sequence[int]) -> _Promoted:
-    """Which of *snapshot_ids* were ever promoted, and which a rollback replaced."""
-    ever: set[int] = set()
-    rolled_back: set[int] = set()
-    if not snapshot_ids:
-        return _Promoted(ever, rolled_back)
-    ids = list(snapshot_ids)
-    for snapshot_id, previous_id, cause in session.execute(
-        select(PromotionRow.snapshot_id, PromotionRow.previous_id, PromotionRow.cause).where(
-            PromotionRow.model_id == model_id,
-            or_(PromotionRow.snapshot_id.in_(ids), PromotionRow.previous_id.in_(ids)),
-        )
-    ):
-        ever.add(snapshot_id)
-        if cause == "rollback" and previous_id is not None:
-            rolled_back.add(previous_id)
-    return _Promoted(ever, rolled_back)
-
-
 def history(
     session: Session, *, model_id: int, limit: int, before_id: int | None = None
 ) -> tuple[HistoryEntry, ...]:
@@ -452,40 +439,58 @@ def history(
     """
     if limit <= 0:
         return ()
+    # One query, only the columns the gate needs: never the findings (their values come from
+    # finding_values in one index range), so the cost does not grow with what they hold. The
+    # latest override and whether the snapshot was promoted or replaced by a rollback are
+    # subqueries answered by the indexes on overrides.verdict_id, promotions.snapshot_id and
+    # promotions.previous_id. Core columns: plain rows, no ORM loading.
+    v, s = VerdictRow.__table__, SnapshotRow.__table__
+    o, p = OverrideRow.__table__, PromotionRow.__table__
+    override = (
+        select(o.c.decision)
+        .where(o.c.verdict_id == v.c.id)
+        .order_by(o.c.id.desc())
+        .limit(1)
+        .scalar_subquery()
+    )
+    promoted = exists().where(p.c.snapshot_id == s.c.id)
+    rolled_back = exists().where(p.c.previous_id == s.c.id, p.c.cause == "rollback")
     stmt = (
-        select(VerdictRow, SnapshotRow)
-        .join(SnapshotRow, SnapshotRow.id == VerdictRow.snapshot_id)
-        .where(VerdictRow.model_id == model_id)
+        select(v.c.id, v.c.decision, v.c.created_at, s.c.key, s.c.rows_trained)
+        .add_columns(s.c.trained_until, override, promoted, rolled_back)
+        .join_from(v, s, s.c.id == v.c.snapshot_id)
+        .where(v.c.model_id == model_id)
     )
     if before_id is not None:
-        stmt = stmt.where(VerdictRow.id < before_id)
-    rows = session.execute(stmt.order_by(VerdictRow.id.desc()).limit(limit)).all()
-    overrides = overrides_for(session, verdict_ids=[v.id for v, _ in rows])
-    state = _promotion_state(session, model_id=model_id, snapshot_ids=[s.id for _, s in rows])
-    entries = []
-    for verdict, snap in rows:
-        effective = effective_decision(verdict, overrides[verdict.id])
-        values = {
-            f["check"]: float(f["value"])
-            for f in verdict.findings
-            if isinstance(f, dict) and f.get("value") is not None
-        }
-        healthy = (
-            effective == "promote" and snap.id in state.ever and snap.id not in state.rolled_back
+        stmt = stmt.where(v.c.id < before_id)
+    rows = session.execute(stmt.order_by(v.c.id.desc()).limit(limit)).all()
+    values = history_values.values_by_verdict(
+        session, model_id=model_id, verdict_ids=[r[0] for r in rows]
+    )
+    return tuple(
+        HistoryEntry(
+            snapshot_key=key,
+            created_at=utc(created_at),  # type: ignore[arg-type]
+            decision=decision,
+            effective_decision=overridden or decision,
+            # healthy: promote in the end, became the baseline, not rolled back
+            healthy=(overridden or decision) == "promote" and bool(ever) and not bool(undone),
+            rows_trained=rows_trained,
+            trained_until=utc(trained_until),
+            values=values[verdict_id],
         )
-        entries.append(
-            HistoryEntry(
-                snapshot_key=snap.key,
-                created_at=utc(verdict.created_at),  # type: ignore[arg-type]
-                decision=verdict.decision,  # type: ignore[arg-type]
-                effective_decision=effective,  # type: ignore[arg-type]
-                healthy=healthy,
-                rows_trained=snap.rows_trained,
-                trained_until=utc(snap.trained_until),
-                values=values,
-            )
-        )
-    return tuple(entries)
+        for (
+            verdict_id,
+            decision,
+            created_at,
+            key,
+            rows_trained,
+            trained_until,
+            overridden,
+            ever,
+            undone,
+        ) in rows
+    )
 
 
 # --- audit --------------------------------------------------------------------------------
@@ -531,7 +536,9 @@ def list_audit(
     if model is not None:
         stmt = stmt.where(AuditRow.model == model)
     if exclude_actor is not None:
-        stmt = stmt.where(AuditRow.actor != exclude_actor)
+        # Two ranges of ix_audit_log_model_actor rather than "!=", which no index serves:
+        # the entries of a busy model are mostly the gate's own.
+        stmt = stmt.where(or_(AuditRow.actor < exclude_actor, AuditRow.actor > exclude_actor))
     if before_id is not None:
         stmt = stmt.where(AuditRow.id < before_id)
     return session.scalars(stmt.order_by(AuditRow.id.desc()).limit(limit)).all()

@@ -129,7 +129,11 @@ class VerdictRow(Base):
     duration_ms: Mapped[float] = mapped_column(Float)
     created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
 
-    __table_args__ = (Index("ix_verdicts_model_created", "model_id", "id"),)
+    __table_args__ = (
+        Index("ix_verdicts_model_created", "model_id", "id"),
+        # Counts of recent holds per model (the model list, the model page).
+        Index("ix_verdicts_model_decision_created", "model_id", "decision", "created_at"),
+    )
 
 
 class OverrideRow(Base):
@@ -150,10 +154,16 @@ class PromotionRow(Base):
 
     __tablename__ = "promotions"
 
+    __table_args__ = (
+        # The baseline as of a time (the reference by lag).
+        Index("ix_promotions_model_created", "model_id", "created_at"),
+    )
+
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
     model_id: Mapped[int] = mapped_column(ForeignKey("models.id"), index=True)
-    snapshot_id: Mapped[int] = mapped_column(ForeignKey("snapshots.id"))
-    previous_id: Mapped[int | None] = mapped_column(ForeignKey("snapshots.id"))
+    # Whether a snapshot was promoted or rolled back (the gate's history): by snapshot.
+    snapshot_id: Mapped[int] = mapped_column(ForeignKey("snapshots.id"), index=True)
+    previous_id: Mapped[int | None] = mapped_column(ForeignKey("snapshots.id"), index=True)
     cause: Mapped[str] = mapped_column(String(20))  # verdict | override | manual | rollback
     verdict_id: Mapped[int | None] = mapped_column(ForeignKey("verdicts.id"))
     actor: Mapped[str] = mapped_column(String(200))
@@ -165,6 +175,10 @@ class AuditRow(Base):
     """Every state change: who, what, when, before and after."""
 
     __tablename__ = "audit_log"
+    __table_args__ = (
+        # A model's entries by actor: the model page leaves out the gate's own entries.
+        Index("ix_audit_log_model_actor", "model", "actor", "id"),
+    )
 
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
     at: Mapped[datetime] = mapped_column(DateTime(timezone=True), index=True)
@@ -222,3 +236,32 @@ class DeliveryRow(Base):
     last_attempt_at: Mapped[datetime | None] = mapped_column(DateTime(timezone=True))
     delivered_at: Mapped[datetime | None] = mapped_column(DateTime(timezone=True))
     failed_at: Mapped[datetime | None] = mapped_column(DateTime(timezone=True))
+
+
+class FindingValueRow(Base):
+    """The numbers of one finding of one verdict, written with the verdict (see
+    service/store/history_values.py): what learned limits and trends read, without decoding
+    the verdict's findings."""
+
+    __tablename__ = "finding_values"
+    __table_args__ = (Index("ix_finding_values_model_verdict", "model_id", "verdict_id"),)
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    verdict_id: Mapped[int] = mapped_column(ForeignKey("verdicts.id", ondelete="CASCADE"))
+    model_id: Mapped[int] = mapped_column(ForeignKey("models.id"))
+    #: The finding's place in the verdict's list (checks run in policy order).
+    position: Mapped[int] = mapped_column(Integer)
+    check_name: Mapped[str] = mapped_column(String(200))
+    kind: Mapped[str] = mapped_column(String(40))
+    statistic: Mapped[str | None] = mapped_column(String(200))
+    against: Mapped[str | None] = mapped_column(String(20))
+    outcome: Mapped[str] = mapped_column(String(16))
+    value: Mapped[float | None] = mapped_column(Float)
+    limit_value: Mapped[float | None] = mapped_column(Float)
+    pvalue: Mapped[float | None] = mapped_column(Float)
+    baseline_value: Mapped[float | None] = mapped_column(Float)
+    candidate_value: Mapped[float | None] = mapped_column(Float)
+    interval_low: Mapped[float | None] = mapped_column(Float)
+    interval_high: Mapped[float | None] = mapped_column(Float)
+    #: ``Finding.details["learn"]``: further quantities a check may learn from, name -> number.
+    learn: Mapped[dict[str, Any] | None] = mapped_column(JSON)

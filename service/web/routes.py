@@ -33,7 +33,7 @@ from service.api.schemas import MAX_ID
 from service.errors import Conflict, Forbidden, InvalidInput, NotFound, TidegateError
 from service.evidence import DEFAULT_BINS
 from service.gate.policy import select_policy
-from service.store import deliveries, repo
+from service.store import deliveries, history_values, repo
 from service.store.tables import ModelRow, SnapshotRow, VerdictRow
 from service.web import csrf, format, svg, trends
 from service.web.auth import SESSION_COOKIE
@@ -176,7 +176,7 @@ def model_context(
     session: Session, *, row: ModelRow, now: datetime, policies: Any, before: str | None
 ) -> dict[str, Any]:
     view = views.model_view(session, model=row, now=now, policies=policies)
-    window, _ = repo.list_verdicts(session, model_id=row.id, limit=WINDOW)
+    window, _ = repo.list_verdicts(session, model_id=row.id, limit=WINDOW, details=True)
     before_id = None
     if before:
         try:
@@ -189,12 +189,16 @@ def model_context(
     ids = list({v.id for v, _ in window} | {v.id for v, _ in page})
     overrides = repo.overrides_for(session, verdict_ids=ids)
     policy = select_policy(policies, row.name)
+    # The trends need the findings' numbers only: from finding_values, not the findings.
+    numbers = history_values.trend_findings(
+        session, model_id=row.id, verdict_ids=[v.id for v, _ in window]
+    )
     trend_rows = [
         trends.Row(
             key=s.key,
             label=_time_label(v.created_at),
             decision=repo.effective_decision(v, overrides[v.id]),
-            findings=v.findings,
+            findings=numbers[v.id],
             metrics=dict(s.metrics or {}),
             summary=s.summary,
         )

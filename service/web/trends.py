@@ -82,6 +82,8 @@ def _by_check(row: Row) -> dict[str, Mapping[str, Any]]:
 def build_trends(model: str, rows: Sequence[Row], policy: Policy | None) -> list[Trend]:
     """Trends for the statistics of the checks, the reported metrics and the mean score."""
 
+    links = {row.key: snapshot_url(model, row.key) for row in rows}  # once per verdict
+
     def point(
         row: Row, f: Mapping[str, Any] | None, value: float | None, limit: float | None
     ) -> TrendPoint:
@@ -91,7 +93,7 @@ def build_trends(model: str, rows: Sequence[Row], policy: Policy | None) -> list
             limit,
             breach=bool(f and f.get("outcome") == "breach"),
             held=row.decision == "hold",
-            href=snapshot_url(model, row.key),
+            href=links[row.key],
             note=row.key,
         )
 

@@ -23,6 +23,7 @@ import numpy as np
 from pydantic import Field, field_validator
 
 from service.gate.checks.base import CheckContext, format_p, register, skipped
+from service.gate.checks.memo import sorted_of
 from service.gate.checks.segments import ALL, CorrectedSegmentKeys, Unit, matching_rows, split
 from service.gate.types import Finding, Sample
 from service.stats import distance
@@ -75,14 +76,20 @@ DriftFn = Callable[[np.ndarray, np.ndarray, DriftConfig], DriftValue]
 
 @dataclass(frozen=True)
 class DriftStatistic:
-    """A drift statistic: its function, and whether it gives a p-value (so ``alpha`` applies)."""
+    """A drift statistic: its function, and whether it gives a p-value (so ``alpha`` applies).
+
+    With ``sorted_input`` the function receives both samples in ascending order (from the
+    evaluation's shared sorts, see memo.py) and must give the same value as on the samples in
+    row order: statistics that sort their inputs anyway (PSI, KS, ...) skip their own sorts.
+    """
 
     fn: DriftFn
     has_pvalue: bool
+    sorted_input: bool = False
 
 
 def _psi(base: np.ndarray, cand: np.ndarray, config: DriftConfig) -> DriftValue:
-    result = drift_stats.psi(base, cand, bins=config.bins)
+    result = drift_stats.psi(base, cand, bins=config.bins, presorted=True)
     details: dict[str, Any] = {
         "edges": list(result.edges),
         "baseline_share": list(result.expected),
@@ -96,12 +103,12 @@ def _psi(base: np.ndarray, cand: np.ndarray, config: DriftConfig) -> DriftValue:
 
 
 def _ks(base: np.ndarray, cand: np.ndarray, config: DriftConfig) -> DriftValue:
-    result = drift_stats.ks_2samp(base, cand)
+    result = drift_stats.ks_2samp(base, cand, presorted=True)
     return DriftValue(result.statistic, result.pvalue, "KS D")
 
 
 def _js(base: np.ndarray, cand: np.ndarray, config: DriftConfig) -> DriftValue:
-    result = distance.jensen_shannon(base, cand, bins=config.bins)
+    result = distance.jensen_shannon(base, cand, bins=config.bins, presorted=True)
     return DriftValue(
         result.statistic,
         result.pvalue,
@@ -116,12 +123,12 @@ def _js(base: np.ndarray, cand: np.ndarray, config: DriftConfig) -> DriftValue:
 
 
 def _wasserstein(base: np.ndarray, cand: np.ndarray, config: DriftConfig) -> DriftValue:
-    result = distance.wasserstein(base, cand, spread=config.spread)
+    result = distance.wasserstein(base, cand, spread=config.spread, presorted=True)
     return DriftValue(result.statistic, None, f"Wasserstein-1 / baseline {config.spread}")
 
 
 def _ad(base: np.ndarray, cand: np.ndarray, config: DriftConfig) -> DriftValue:
-    result = distance.anderson_ksamp(base, cand)
+    result = distance.anderson_ksamp(base, cand, presorted=True)
     return DriftValue(
         result.statistic,
         result.pvalue,
@@ -144,11 +151,11 @@ def _quantile_shift(base: np.ndarray, cand: np.ndarray, config: DriftConfig) -> 
 
 #: statistic name -> statistic; add entries to offer more (see DEVELOPERS.md).
 DRIFT_STATISTICS: dict[str, DriftStatistic] = {
-    "psi": DriftStatistic(_psi, True),
-    "ks": DriftStatistic(_ks, True),
-    "js": DriftStatistic(_js, True),
-    "wasserstein": DriftStatistic(_wasserstein, False),
-    "ad": DriftStatistic(_ad, True),
+    "psi": DriftStatistic(_psi, True, sorted_input=True),
+    "ks": DriftStatistic(_ks, True, sorted_input=True),
+    "js": DriftStatistic(_js, True, sorted_input=True),
+    "wasserstein": DriftStatistic(_wasserstein, False, sorted_input=True),
+    "ad": DriftStatistic(_ad, True, sorted_input=True),
     "mean_shift": DriftStatistic(_mean_shift, True),
     "quantile_shift": DriftStatistic(_quantile_shift, False),
 }
@@ -204,9 +211,12 @@ def run_drift(config: DriftConfig, ctx: CheckContext) -> list[Finding]:
                 }
             )
             continue
-        results.append(
-            (unit, base, cand, DRIFT_STATISTICS[config.statistic].fn(base, cand, config))
-        )
+        statistic = DRIFT_STATISTICS[config.statistic]
+        if statistic.sorted_input:
+            value = statistic.fn(sorted_of(base), sorted_of(cand), config)
+        else:
+            value = statistic.fn(base, cand, config)
+        results.append((unit, base, cand, value))
     has_p = DRIFT_STATISTICS[config.statistic].has_pvalue
     raw = [r[3].pvalue if r[3].pvalue is not None else 1.0 for r in results]
     adjusted = adjust(raw, config.correction) if has_p else [None] * len(results)

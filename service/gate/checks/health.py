@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from service.gate.checks.memo import sorted_with_order
 from service.gate.policy import SampleRules
 from service.gate.types import Finding, Snapshot
 
@@ -60,7 +61,9 @@ def health_findings(rules: SampleRules, candidate: Snapshot) -> list[Finding]:
             limit=rules.max_nonfinite_share,
         )
     )
-    finite = score[finite_mask]
+    # The column itself when every score is finite, so what the checks share about it (its
+    # sort, see memo.py) is shared with this check too.
+    finite = score if n_bad == 0 else score[finite_mask]
     if finite.size == 0:
         return findings
     low = -np.inf if rules.score_min is None else rules.score_min
@@ -96,8 +99,14 @@ def health_findings(rules: SampleRules, candidate: Snapshot) -> list[Finding]:
             limit=rules.min_std,
         )
     )
-    _, counts = np.unique(finite, return_counts=True)
-    mode_share = float(counts.max() / n)
+    # The most common value's count: the longest run of equal values in sorted order (the
+    # score's sort order is shared with the checks that follow: AUC, PSI, KS, ...).
+    ordered = sorted_with_order(finite)
+    new = np.empty(ordered.size, dtype=bool)
+    new[0] = True
+    np.not_equal(ordered[1:], ordered[:-1], out=new[1:])
+    runs = np.diff(np.append(np.flatnonzero(new), ordered.size))
+    mode_share = float(runs.max() / n)
     bad = mode_share > rules.max_mode_share
     findings.append(
         _finding(

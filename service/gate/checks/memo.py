@@ -1,9 +1,11 @@
 """Results the checks of one evaluation share, remembered while their input array lives.
 
-Several checks look at the same sample columns: the AUC check, the Spearman check and the KS
-check all sort the score; every segmented check codes the same segment columns. Sorting a
-million scores or coding a million strings costs tens of milliseconds each, so the first check
-to need one stores it here and the others reuse it.
+Several checks look at the same sample columns: the AUC check and the Spearman check need the
+score's sort order, PSI, KS, Anderson–Darling, Wasserstein, Jensen–Shannon and the health
+check's saturation need its sorted values; every segmented check codes the same segment
+columns. Sorting a million scores or coding a million strings costs tens of milliseconds each,
+so the first check to need one stores it here and the others reuse it: one sort per column per
+evaluation (:func:`order_of` and :func:`sorted_of` share it), whatever the policy holds.
 
 Entries are keyed by the array object (``id`` plus a weak reference that must still point to
 the same array), so they vanish with the sample and can never be confused with a later array
@@ -20,6 +22,7 @@ from typing import Any, TypeVar
 import numpy as np
 
 from service.stats.grouping import Codes, factorize
+from service.stats.sorting import order_and_sorted
 
 T = TypeVar("T")
 
@@ -46,9 +49,34 @@ def codes_of(column: np.ndarray, name: str) -> Codes:
     return remembered(column, "codes", lambda: factorize(column, name))
 
 
+def known(array: np.ndarray, what: str) -> bool:
+    """Whether a result for this *array* and *what* is remembered."""
+    hit = _MEMO.get((id(array), what))
+    return hit is not None and hit[0]() is array
+
+
+def _sort(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    return remembered(values, "sort", lambda: order_and_sorted(values))
+
+
 def order_of(values: np.ndarray) -> np.ndarray:
-    """``np.argsort(values)`` (any order among ties)."""
-    return remembered(values, "argsort", lambda: np.argsort(values))
+    """The ascending sort order of *values* (any order among ties); see
+    :func:`service.stats.sorting.order_and_sorted`. Its sorted values come with it."""
+    return _sort(values)[0]
+
+
+def sorted_with_order(values: np.ndarray) -> np.ndarray:
+    """``np.sort(values)``, computing and remembering the sort order with it (for a column
+    whose order later checks are likely to need: the score)."""
+    return _sort(values)[1]
+
+
+def sorted_of(values: np.ndarray) -> np.ndarray:
+    """``np.sort(values)``: from the remembered sort order when a check asked for it, else
+    sorted once (and remembered) without it."""
+    if known(values, "sort"):
+        return _sort(values)[1]
+    return remembered(values, "sorted", lambda: np.sort(values))
 
 
 def finite_rows(columns: list[np.ndarray]) -> np.ndarray | None:

@@ -48,7 +48,7 @@ from service.gate.checks.comparisons import (
     label_of,
     value_of,
 )
-from service.gate.checks.memo import codes_of, finite_rows, order_of, take
+from service.gate.checks.memo import codes_of, finite_rows, order_of, sorted_with_order, take
 from service.gate.checks.segments import (
     ALL,
     CorrectedSegmentKeys,
@@ -59,7 +59,7 @@ from service.gate.checks.segments import (
     where,
 )
 from service.gate.types import Finding, Sample
-from service.stats.auc import AUCChange, delong_paired, has_ties
+from service.stats.auc import AUCChange, delong_paired
 from service.stats.delong_segments import delong_paired_by_value
 from service.stats.inference import (
     BoundaryTest,
@@ -280,6 +280,11 @@ def run_quality(config: QualityConfig, ctx: CheckContext) -> list[Finding]:
     ]
 
 
+def _has_ties(ordered: np.ndarray) -> bool:
+    """Whether two of the sorted values are equal."""
+    return bool(np.any(ordered[1:] == ordered[:-1]))
+
+
 def _paired_auc_units(
     sample: Sample,
     cand: Side,
@@ -291,7 +296,8 @@ def _paired_auc_units(
 ) -> dict[str, Comparison | str]:
     """Paired DeLong for every unit from one sort per score (see delong_segments)."""
     order_c, order_b = both(lambda: order_of(cand.score), lambda: order_of(base.score), rows=rows)
-    ties = (has_ties(cand.score, order_c), has_ties(base.score, order_b))
+    # Ties from the sorted values the sort gave with the order (no second gather).
+    ties = (_has_ties(sorted_with_order(cand.score)), _has_ties(sorted_with_order(base.score)))
     positive = cand.label > 0
     found: dict[str, AUCChange | str] = {
         ALL: delong_paired(
