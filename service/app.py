@@ -14,7 +14,15 @@ from service.api.auth import TokenGate
 from service.api.deps import Database
 from service.api.errors import install_error_handlers
 from service.api.middleware import BodyLimit, RequestContext
-from service.api.routers import audit, health, models, overrides, snapshots, verdicts
+from service.api.routers import (
+    audit,
+    health,
+    models,
+    overrides,
+    serving,
+    snapshots,
+    verdicts,
+)
 from service.api.routers import metrics as metrics_routes
 from service.api.routers import policies as policy_routes
 from service.api.routers import tokens as token_routes
@@ -75,6 +83,7 @@ def create_app(
     for router in (
         snapshots.router,
         models.router,
+        serving.router,
         verdicts.router,
         overrides.router,
         audit.router,

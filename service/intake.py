@@ -15,7 +15,7 @@ from datetime import datetime, timedelta
 
 from sqlalchemy.orm import Session
 
-from service.errors import Conflict
+from service.errors import Conflict, InvalidInput
 from service.gate.evaluate import evaluate, failed_verdict
 from service.gate.policy import Policy, select_policy
 from service.gate.types import GateInput, Sample, Snapshot
@@ -65,6 +65,21 @@ def resolve_reference(
     return session.get(SnapshotRow, row.snapshot_id) if row is not None else None
 
 
+def require_sample(post: SnapshotPost, policy: Policy | None) -> None:
+    """Refuse a post without a sample unless *policy* judges reported metrics only
+    (``[sample] required = false``), and a sample with no rows always (README, "The post")."""
+    if post.sample is None:
+        if policy is None or policy.sample.required:
+            raise InvalidInput(
+                "a sample is required (with at least the score column); a policy that judges "
+                "reported metrics only says so with [sample] required = false"
+                + ("" if policy is not None else "; no policy matches this model"),
+                field="sample",
+            )
+    elif len(post.sample) == 0:
+        raise InvalidInput("the sample has no rows", field="sample.score")
+
+
 def submit(
     session: Session,
     *,
@@ -75,7 +90,18 @@ def submit(
     history_limit: int = 200,
     actor: str = "trainer",
 ) -> Submitted:
-    """Store *post* for *model_name*, judge it and store the verdict. Does not commit."""
+    """Store *post* for *model_name*, judge it and store the verdict. Does not commit.
+
+    Raises
+    ------
+    InvalidInput
+        The post has no sample and the model's policy does not judge reported metrics only,
+        or its sample has no rows (nothing is stored).
+    Conflict
+        The key was used for other content.
+    """
+    policy = select_policy(policies, model_name)
+    require_sample(post, policy)
     model = repo.get_or_create_model(session, name=model_name, now=now)
     existing = repo.get_snapshot(session, model_id=model.id, key=post.key)
     if existing is not None:
@@ -102,7 +128,6 @@ def submit(
         sample=post.sample,
         now=now,
     )
-    policy = select_policy(policies, model_name)
     baseline_row = repo.snapshot_by_id(session, snapshot_id=model.baseline_id)
     reference_row: SnapshotRow | None = None
     started = time.perf_counter()

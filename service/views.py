@@ -79,6 +79,7 @@ def verdict_detail(session: Session, *, verdict: VerdictRow) -> dict[str, Any]:
             "overrides": [override_view(o) for o in overrides],
             "previous_verdict_id": prev_id,
             "next_verdict_id": next_id,
+            "serves_now": model.baseline_id == snapshot.id,
         }
     )
     return out

@@ -125,6 +125,9 @@ class VerdictPublic(VerdictSummary):
     overrides: list[OverridePublic]
     previous_verdict_id: int | None = None
     next_verdict_id: int | None = None
+    serves_now: bool = Field(
+        False, description="The snapshot is the one serving at the time of this answer."
+    )
 
 
 class VerdictList(BaseModel):
@@ -387,3 +390,31 @@ class ReplayPublic(BaseModel):
     policy_digest: str
     summary: dict[str, Any]
     data: list[ReplayRow]
+
+
+class AskedSnapshot(BaseModel):
+    """Where the snapshot asked about (``?snapshot=``) stands."""
+
+    snapshot: str
+    state: Literal["serves", "waiting", "superseded"] = Field(
+        description="serves: it is the baseline; superseded: a newer snapshot serves (only a "
+        "rollback would bring it back); waiting: an override to promote would make it serve."
+    )
+    verdict_id: int | None = None
+    decision: Literal["promote", "hold"] | None = None
+    effective_decision: Literal["promote", "hold"] | None = None
+
+
+class ServingPublic(BaseModel):
+    """The snapshot that serves now (what a deploy step ships)."""
+
+    model: str
+    snapshot: str | None = Field(description="Key of the serving snapshot; null: none yet.")
+    since: str | None = None
+    trained_until: str | None = None
+    cause: Literal["gate", "override", "manual", "rollback"] | None = None
+    verdict_id: int | None = None
+    audit_id: int | None = None
+    actor: str | None = None
+    reason: str | None = None
+    asked: AskedSnapshot | None = None

@@ -535,3 +535,32 @@ def list_audit(
     if before_id is not None:
         stmt = stmt.where(AuditRow.id < before_id)
     return session.scalars(stmt.order_by(AuditRow.id.desc()).limit(limit)).all()
+
+
+# --- what serves ----------------------------------------------------------------------------
+
+
+def serving_promotion(session: Session, *, model: ModelRow) -> PromotionRow | None:
+    """The promotion that made the model's current baseline serve (its newest promotion of
+    that snapshot); None when nothing serves."""
+    if model.baseline_id is None:
+        return None
+    return session.scalars(
+        select(PromotionRow)
+        .where(PromotionRow.model_id == model.id, PromotionRow.snapshot_id == model.baseline_id)
+        .order_by(PromotionRow.id.desc())
+        .limit(1)
+    ).first()
+
+
+def audit_entry_at(
+    session: Session, *, model: str, at: datetime, actions: Sequence[str]
+) -> AuditRow | None:
+    """The newest audit entry of *model* with one of *actions* written at *at* (a change of
+    the baseline writes its promotion and its audit entry with the same time)."""
+    return session.scalars(
+        select(AuditRow)
+        .where(AuditRow.model == model, AuditRow.at == at, AuditRow.action.in_(list(actions)))
+        .order_by(AuditRow.id.desc())
+        .limit(1)
+    ).first()

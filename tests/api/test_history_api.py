@@ -7,7 +7,7 @@ from typing import Any
 import pytest
 
 from service import cli
-from service.client import TidegateClient
+from tidegate_client import Client as TidegateClient
 from tests.api.test_snapshots import body
 from tests.conftest import Harness
 
