@@ -67,8 +67,11 @@ def _failure(exc: Exception) -> int:
     """Print a client error; its exit code (4 rejected, 5 unreachable)."""
     from tidegate_client import Unreachable
 
+    if isinstance(exc, Unreachable):
+        print(f"error: unreachable: {exc}", file=sys.stderr)
+        return EXIT_UNREACHABLE
     print(f"error: {exc}", file=sys.stderr)
-    return EXIT_UNREACHABLE if isinstance(exc, Unreachable) else EXIT_REJECTED
+    return EXIT_REJECTED
 
 
 class _Failed(int):
