@@ -7,9 +7,9 @@ from typing import Any
 import pytest
 
 from service import cli
-from tidegate_client import Client as TidegateClient
 from tests.api.test_snapshots import body
 from tests.conftest import Harness
+from tidegate_client import Client as TidegateClient
 
 POLICY = """
 models = ["*"]
