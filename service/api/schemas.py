@@ -182,6 +182,10 @@ class SnapshotPublic(BaseModel):
     columns: list[str]
     summary: dict[str, Any] | None = None
     sample_pruned_at: str | None = None
+    content_digest: str = Field(
+        description="Digest of the post's content (README, 'Content digest'): a retry with "
+        "the same digest is answered with the stored verdict."
+    )
     created_at: str
     verdict_id: int | None = None
     is_baseline: bool
