@@ -27,6 +27,7 @@ from service.api.routers import metrics as metrics_routes
 from service.api.routers import policies as policy_routes
 from service.api.routers import tokens as token_routes
 from service.gate.policy import Policy, load_policies
+from service.heavy import Heavy
 from service.metrics import Metrics
 from service.settings import Settings
 from service.store import db as store_db
@@ -79,6 +80,7 @@ def create_app(
     app.state.policies = loaded
     app.state.clock = clock
     app.state.metrics = Metrics()
+    app.state.heavy = Heavy(slots=settings.heavy_concurrency)
     install_error_handlers(app)
     for router in (
         snapshots.router,
@@ -97,6 +99,7 @@ def create_app(
     ):
         app.include_router(router)
     web_auth.install(app)
+    snapshots.document_upload(app)
     # Added last = outermost: RequestContext -> BodyLimit -> TokenGate -> routes.
     app.add_middleware(TokenGate, settings=settings, database=app.state.database)
     app.add_middleware(BodyLimit, limit=settings.max_body_bytes)

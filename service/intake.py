@@ -9,10 +9,11 @@ from __future__ import annotations
 
 import logging
 import time
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta
 
+import numpy as np
 from sqlalchemy.orm import Session
 
 from service.errors import Conflict, InvalidInput
@@ -38,6 +39,8 @@ class SnapshotPost:
     metrics: dict[str, float] = field(default_factory=dict)
     tags: dict[str, str] = field(default_factory=dict)
     sample: Sample | None = None
+    #: Text columns' (codes, distinct values), computed while validating; the store reuses them.
+    text_codes: Mapping[str, tuple[np.ndarray, list[str]]] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)
@@ -127,6 +130,7 @@ def submit(
         content_digest=post.content_digest,
         sample=post.sample,
         now=now,
+        text_codes=post.text_codes,
     )
     baseline_row = repo.snapshot_by_id(session, snapshot_id=model.baseline_id)
     reference_row: SnapshotRow | None = None

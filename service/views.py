@@ -103,6 +103,7 @@ def snapshot_view(session: Session, *, model: ModelRow, snapshot: SnapshotRow) -
         "columns": columns,
         "summary": snapshot.summary,
         "sample_pruned_at": iso(snapshot.sample_pruned_at),
+        "content_digest": snapshot.content_digest,
         "created_at": iso(snapshot.created_at),
         "verdict_id": verdict.id if verdict else None,
         "is_baseline": model.baseline_id == snapshot.id,

@@ -57,8 +57,8 @@ class SampleIn(BaseModel):
     rank: list[Rank] | None = Field(None, description="Position of the item in its group's list.")
 
 
-class SnapshotCreate(BaseModel):
-    """One snapshot posted by the retraining job."""
+class SnapshotMeta(BaseModel):
+    """One snapshot's fields without its sample: the ``snapshot`` part of a multipart post."""
 
     model_config = ConfigDict(extra="forbid")
 
@@ -73,6 +73,11 @@ class SnapshotCreate(BaseModel):
     metrics: dict[ShortText, FiniteFloat] = Field(
         default_factory=dict, description="Metrics the trainer computed itself."
     )
+
+
+class SnapshotCreate(SnapshotMeta):
+    """One snapshot posted by the retraining job."""
+
     sample: SampleIn | None = Field(None, description="Scored rows (see SampleIn).")
 
 
@@ -180,6 +185,10 @@ class SnapshotPublic(BaseModel):
     columns: list[str]
     summary: dict[str, Any] | None = None
     sample_pruned_at: str | None = None
+    content_digest: str = Field(
+        description="Digest of the post's content (README, 'Content digest'): a retry with "
+        "the same digest is answered with the stored verdict."
+    )
     created_at: str
     verdict_id: int | None = None
     is_baseline: bool

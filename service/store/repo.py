@@ -7,7 +7,7 @@ transaction commits once (see :func:`service.store.db.transaction`).
 from __future__ import annotations
 
 import base64
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from typing import Any
@@ -106,8 +106,10 @@ def add_snapshot(
     content_digest: str,
     sample: Sample | None,
     now: datetime,
+    text_codes: Mapping[str, codec.Factorized] | None = None,
 ) -> SnapshotRow:
-    """Insert a snapshot with its sample columns (compressed) and the score summary."""
+    """Insert a snapshot with its sample columns (compressed) and the score summary.
+    *text_codes* may hold the text columns' (codes, distinct values) already computed."""
     row = SnapshotRow(
         model_id=model_id,
         key=key,
@@ -125,7 +127,7 @@ def add_snapshot(
     session.add(row)
     session.flush()
     if sample is not None:
-        for name, codec_name, length, data in codec.encode_sample(sample):
+        for name, codec_name, length, data in codec.encode_sample(sample, text_codes):
             session.add(
                 SampleColumnRow(
                     snapshot_id=row.id, name=name, codec=codec_name, length=length, data=data
