@@ -262,15 +262,31 @@ def test_submit_reads_the_sample_from_a_file(
     assert set(stored["columns"]) == {"score", "baseline_score", "label", "segment.device"}
 
 
-def test_an_older_service_gets_plain_json_after_refusing_an_encoded_body(live: Live) -> None:
-    with trainer(live, compress_min_bytes=0, binary_min_rows=10) as gate:
-        verdict = gate.submit(
-            "shelf-ranker-g", "g01", sample=frame_columns(12), trained_until=watermark(1)
+@pytest.mark.parametrize("compression", ["gzip", "zstd"])
+def test_a_large_sample_goes_as_compressed_arrow_and_a_json_retry_matches_it(
+    live: Live, compression: str
+) -> None:
+    model = f"shelf-ranker-{compression}"
+    columns = frame_columns(12)
+    sent: list[httpx.Request] = []
+    hooks = {"request": [sent.append]}
+    with trainer(live, compression=compression, compress_min_bytes=0, binary_min_rows=10) as gate:
+        gate._http.event_hooks = hooks  # look at what went over the wire
+        binary = gate.submit(
+            "shelf-ranker-" + compression, "g01", sample=columns, trained_until=watermark(1)
         )
-        accepted = gate.encoded_bodies_ok
-    assert verdict.decision == "promote"
-    # this service reads neither gzip/zstd bodies nor Arrow uploads yet: remembered
-    assert accepted is False
+        assert gate.encoded_bodies_ok
+    assert sent[0].headers["content-type"].startswith("multipart/form-data; boundary=")
+    assert sent[0].headers["content-encoding"] == compression
+    assert binary.decision == "promote" and binary.created
+    # the same snapshot posted again as plain JSON is a retry of it: the stored verdict (200)
+    with trainer(live, upload="json", compression="none") as gate:
+        again = gate.submit(model, "g01", sample=columns, trained_until=watermark(1))
+    assert (again.verdict_id, again.created) == (binary.verdict_id, False)
+    with Client(live.url, token=live.viewer) as reader:
+        stored = reader.snapshot(model, "g01")
+    assert stored["sample_rows"] == 400
+    assert set(stored["columns"]) == {"score", "baseline_score", "label", "segment.device"}
 
 
 def test_open_mode_names_the_actor_from_the_command_line(
