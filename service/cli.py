@@ -704,8 +704,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     logging.basicConfig(
         level=logging.WARNING, format="%(asctime)s %(levelname)s %(name)s %(message)s"
     )
-    args = build_parser().parse_args(argv)
     try:
+        args = build_parser().parse_args(argv)
         code = int(args.func(args))
         sys.stdout.flush()
         return code

@@ -320,3 +320,74 @@ def test_open_mode_names_the_actor_from_the_command_line(
         assert cli.main(["audit", "--url", server.url, "--limit", "1"]) == 0
         out = capsys.readouterr().out
     assert "ana@bramble" in out.splitlines()[1] and "baseline.rollback" in out
+
+
+def _closed_pipe(argv: list[str], env: dict[str, str] | None = None) -> tuple[int, str]:
+    """Run ``tidegate ARGV`` with standard output a pipe whose reader is already gone (as
+    ``tidegate why ... | head`` after head exits); its exit code and standard error."""
+    import os
+    import subprocess
+    import sys
+
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "service.cli", *argv],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        env={**os.environ, **(env or {})},
+    )
+    assert proc.stdout is not None and proc.stderr is not None
+    proc.stdout.close()
+    err = proc.stderr.read().decode()
+    return proc.wait(timeout=300), err
+
+
+def test_output_into_a_closed_pipe_ends_quietly(live: Live) -> None:
+    with trainer(live) as gate:
+        gate.submit("shelf-ranker-p", "p01", sample=frame_columns(15), trained_until=watermark(1))
+        held = gate.submit(
+            "shelf-ranker-p",
+            "p02",
+            sample=frame_columns(16, shift=0.35),
+            trained_until=watermark(2),
+        )
+    remote = ["--url", live.url, "--token", live.viewer]
+    for argv in (
+        ["why", "shelf-ranker-p", *remote],
+        ["history", "shelf-ranker-p", *remote],
+        ["--help"],
+    ):
+        code, err = _closed_pipe(argv)
+        assert (code, err) == (0, ""), argv
+    # submit keeps its exit code: a held snapshot is 3 even when nobody reads the text
+    post = json.dumps(
+        {
+            "key": "p02",
+            "trained_until": watermark(2),
+            "sample": {k: v.tolist() for k, v in frame_columns(16, shift=0.35).items()},
+        }
+    )
+    meta = Path(live.server.folder) / "p02.json"
+    meta.write_text(post)
+    code, err = _closed_pipe(
+        [
+            "submit",
+            str(meta),
+            "--model",
+            "shelf-ranker-p",
+            "--url",
+            live.url,
+            "--token",
+            live.trainer,
+        ]
+    )
+    assert held.decision == "hold" and (code, err) == (3, "")
+
+
+def test_help_is_plain_text(capsys: pytest.CaptureFixture[str]) -> None:
+    with pytest.raises(SystemExit):
+        cli.main(["--help"])
+    text = capsys.readouterr().out
+    assert "``" not in text and text.startswith("usage: tidegate")
+    assert "Exit codes. submit: 0 the snapshot serves now" in text
+    for command in ("submit", "serving", "wait", "why", "history"):
+        assert f"    {command} " in text
