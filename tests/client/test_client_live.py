@@ -5,7 +5,6 @@ for an override, and the ``tidegate submit / serving / wait`` exit codes."""
 from __future__ import annotations
 
 import json
-from collections.abc import Iterator
 from pathlib import Path
 
 import httpx
@@ -17,7 +16,7 @@ import pyarrow.parquet as pq
 import pytest
 
 from service import cli
-from tests.client.live import Live, frame_columns, live_service, watermark
+from tests.client.live import Live, frame_columns, watermark
 from tests.serverproc import free_port
 from tidegate_client import (
     Client,
@@ -28,12 +27,6 @@ from tidegate_client import (
     Unauthorised,
     Unreachable,
 )
-
-
-@pytest.fixture(scope="module")
-def live(tmp_path_factory: pytest.TempPathFactory, sqlite_template: Path) -> Iterator[Live]:
-    with live_service(tmp_path_factory.mktemp("client-live"), sqlite_template) as running:
-        yield running
 
 
 def trainer(live: Live, **kwargs: object) -> Client:
