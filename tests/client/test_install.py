@@ -156,18 +156,24 @@ def test_the_client_alone_installs_httpx_and_numpy_and_posts_a_dataframe(
     plain = installed(bin_dir)
     print(f"\nclient install: {len(plain)} packages: {sorted(plain)}")
     assert {"tidegate-client", "httpx", "numpy"} <= plain and not plain & SERVER_ONLY
-    pip(bin_dir, f"{src / 'client'}[pandas]")
+    pip(bin_dir, f"{src / 'client'}[pandas,polars]")
     script = f"""
-import numpy as np, pandas as pd
+import numpy as np, pandas as pd, polars as pl
 from tidegate_client import Client
 rng = np.random.default_rng(41)
 base = rng.beta(2.0, 5.0, 400)
-frame = pd.DataFrame({{"score": np.clip(base + rng.normal(0, 0.01, 400), 0, 1),
-                      "baseline_score": base, "label": (rng.random(400) < base).astype(int),
-                      "segment.device": np.where(rng.random(400) < 0.6, "app", "web")}})
+columns = {{"score": np.clip(base + rng.normal(0, 0.01, 400), 0, 1),
+           "baseline_score": base, "label": (rng.random(400) < base).astype(int),
+           "segment.device": np.where(rng.random(400) < 0.6, "app", "web")}}
 with Client({live.url!r}, token={live.trainer!r}) as gate:
-    v = gate.submit("shelf-ranker-venv", "v1", sample=frame, trained_until={watermark(1)!r})
+    v = gate.submit("shelf-ranker-venv", "v1", sample=pd.DataFrame(columns),
+                    trained_until={watermark(1)!r})
     print(v.decision, v.serves_now, gate.serving("shelf-ranker-venv").snapshot)
+    # polars, as JSON and as a compressed Arrow upload: the same post, so a retry (200)
+    for upload in ("json", "arrow"):
+        again = gate.submit("shelf-ranker-venv", "v1", sample=pl.DataFrame(columns),
+                            trained_until={watermark(1)!r}, upload=upload)
+        print(again.verdict_id == v.verdict_id, again.created)
 """
     run = subprocess.run(
         [str(bin_dir / "python"), "-c", script],
@@ -178,4 +184,4 @@ with Client({live.url!r}, token={live.trainer!r}) as gate:
         env={**os.environ, "PYTHONPATH": ""},
     )
     assert run.returncode == 0, run.stderr
-    assert run.stdout.split() == ["promote", "True", "v1"]
+    assert run.stdout.split() == ["promote", "True", "v1", "True", "False", "True", "False"]
