@@ -29,7 +29,7 @@ from sqlalchemy import func, select
 
 from service.store import db as store_db
 from service.store import repo
-from service.store.tables import Base, ModelRow, SnapshotRow
+from service.store.tables import Base, ModelRow
 from tests.databases import Api, snapshot_body
 
 ARROW = "application/vnd.apache.arrow.stream"
