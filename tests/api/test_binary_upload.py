@@ -650,3 +650,12 @@ def test_a_retry_of_a_post_stored_by_version_0_1_is_still_a_retry(api: Api) -> N
     assert send(api, *encoded(body, "json")).status_code == 200
     changed = rich_body("old", step=1, seed=9)
     assert send(api, *encoded(changed, "json")).status_code == 409
+
+
+def test_the_readme_lists_every_bad_binary_post() -> None:
+    from pathlib import Path
+
+    readme = (Path(__file__).resolve().parents[2] / "README.md").read_text("utf-8")
+    section = readme.split("Binary and compressed posts (", 1)[-1]
+    missing = [label for label, *_ in BAD_POSTS if f"| {label} |" not in section]
+    assert not missing, f"add these to the README's binary bad-input table: {missing}"
