@@ -73,11 +73,24 @@ class Heavy:
 
     async def run(self, fn: Callable[P, T], *args: P.args, **kwargs: P.kwargs) -> T:
         """Run ``fn(*args, **kwargs)`` in a worker thread holding one slot."""
+        self._count(waiting=1)
+        entered = False
 
         def call() -> T:
-            with self.slot():
+            nonlocal entered
+            self._threads.acquire()
+            self._count(running=1, waiting=-1)
+            entered = True
+            try:
                 return fn(*args, **kwargs)
+            finally:
+                self._count(running=-1)
+                self._threads.release()
 
-        # The limiter keeps waiting jobs off the thread pool (a thread is taken only when a
-        # slot is likely free); the semaphore inside is what guarantees the bound.
-        return await anyio.to_thread.run_sync(call, limiter=self._limiter)
+        try:
+            # The limiter keeps waiting jobs off the thread pool (a thread is taken only when
+            # a slot is likely free); the semaphore is what guarantees the bound.
+            return await anyio.to_thread.run_sync(call, limiter=self._limiter)
+        finally:
+            if not entered:
+                self._count(waiting=-1)

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import logging
 import time
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta
 
@@ -41,6 +41,14 @@ class SnapshotPost:
     sample: Sample | None = None
     #: Text columns' (codes, distinct values), computed while validating; the store reuses them.
     text_codes: Mapping[str, tuple[np.ndarray, list[str]]] = field(default_factory=dict)
+    #: The digest as version 0.1 computed it (JSON posts only; computed only when a stored
+    #: snapshot's digest differs), so a retry across the upgrade is still a retry.
+    legacy_digest: Callable[[], str] | None = None
+
+    def same_content(self, stored_digest: str) -> bool:
+        if stored_digest == self.content_digest:
+            return True
+        return self.legacy_digest is not None and stored_digest == self.legacy_digest()
 
 
 @dataclass(frozen=True)
@@ -108,7 +116,7 @@ def submit(
     model = repo.get_or_create_model(session, name=model_name, now=now)
     existing = repo.get_snapshot(session, model_id=model.id, key=post.key)
     if existing is not None:
-        if existing.content_digest == post.content_digest:
+        if post.same_content(existing.content_digest):
             verdict_row = repo.verdict_for_snapshot(session, snapshot_id=existing.id)
             if verdict_row is not None:
                 return Submitted(model, existing, verdict_row, created=False)

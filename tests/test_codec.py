@@ -17,9 +17,8 @@ import numpy as np
 import pytest
 from sqlalchemy import select, update
 
-from service.store import codec
+from service.store import codec, repo
 from service.store import db as store_db
-from service.store import repo
 from service.store.tables import ModelRow, SampleColumnRow
 from tests.databases import Api, snapshot_body
 

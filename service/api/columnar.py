@@ -17,6 +17,7 @@ from __future__ import annotations
 from typing import Any
 
 import numpy as np
+import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.ipc as ipc
@@ -94,9 +95,29 @@ def _numeric(name: str, column: Any) -> np.ndarray:
     return array
 
 
+def _dictionary_text(name: str, column: Any, limit: int) -> tuple[np.ndarray, Any] | None:
+    """A dictionary-encoded text column without decoding it: its codes renumbered in order of
+    first appearance (None when the dictionary is not text or a value is null)."""
+    kind = column.type
+    if not (pa.types.is_string(kind.value_type) or pa.types.is_large_string(kind.value_type)):
+        return None
+    if column.null_count:
+        return None
+    chunk = column.combine_chunks() if column.num_chunks != 1 else column.chunk(0)
+    if chunk.dictionary.null_count:
+        return None
+    indices = np.asarray(chunk.indices.to_numpy(zero_copy_only=False))
+    codes, used = pd.factorize(indices, sort=False)
+    dictionary = chunk.dictionary.to_pylist()
+    return text_from_codes(name, codes, [dictionary[int(i)] for i in used], limit)
+
+
 def _text(name: str, column: Any, limit: int) -> tuple[np.ndarray, Any]:
     kind = column.type
     if pa.types.is_dictionary(kind):
+        found = _dictionary_text(name, column, limit)
+        if found is not None:
+            return found
         column = column.cast(kind.value_type)
         kind = column.type
     if pa.types.is_integer(kind):

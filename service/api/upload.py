@@ -17,7 +17,10 @@ worker thread holding a heavy-work slot (:mod:`service.heavy`).
 
 from __future__ import annotations
 
+import hashlib
 import json
+from collections.abc import Callable
+from functools import partial
 from typing import Any, TypeVar
 
 import pydantic_core
@@ -139,6 +142,12 @@ def _multipart(
     return meta, columnar.from_table(table, settings)
 
 
+def legacy_digest(created: SnapshotCreate) -> str:
+    """The digest of version 0.1: SHA-256 of the parsed body written out again as JSON."""
+    canonical = json.dumps(created.model_dump(), sort_keys=True, default=str, allow_nan=True)
+    return "sha256:" + hashlib.sha256(canonical.encode("utf-8")).hexdigest()
+
+
 def parse_post(
     data: bytes | bytearray, *, content_type: str | None, encoding: str, settings: Settings
 ) -> SnapshotPost:
@@ -147,10 +156,12 @@ def parse_post(
     kind = check_media_type(content_type)
     body = decode_body(data, encoding=encoding, limit=settings.max_body_bytes)
     decoded: Decoded | None
+    legacy: Callable[[], str] | None = None
     if kind == "json":
         created = validate(SnapshotCreate, load_json(body))
         decoded = from_json(created.sample, settings) if created.sample is not None else None
         meta: SnapshotMeta = created
+        legacy = partial(legacy_digest, created)
     else:
         meta, decoded = _multipart(body, content_type or "", settings)
     fields = meta.model_dump(include=set(SnapshotMeta.model_fields))
@@ -171,4 +182,5 @@ def parse_post(
         tags=dict(meta.tags),
         sample=decoded.sample if decoded is not None else None,
         text_codes=dict(decoded.factorized) if decoded is not None else {},
+        legacy_digest=legacy,
     )

@@ -138,7 +138,8 @@ def summarise(score: np.ndarray) -> SampleSummary:
     lo, hi = float(finite.min()), float(finite.max())
     with np.errstate(over="ignore", invalid="ignore"):
         mean, std = float(finite.mean()), float(finite.std())
-        quantiles = np.quantile(finite, QUANTILE_LEVELS)
+        # 101 quantiles of an unsorted array cost 101 partitions; one sort is far cheaper
+        quantiles = np.quantile(np.sort(finite), QUANTILE_LEVELS)
     edges_counts = _histogram(finite, lo, hi)
     return SampleSummary(
         count=int(score.size),

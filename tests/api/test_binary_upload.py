@@ -628,3 +628,34 @@ def test_too_many_rows_in_arrow(make_api: Callable[..., Api]) -> None:
     assert response.status_code == 422
     assert response.json()["error"]["code"] == "too_many_rows"
     assert response.json()["error"]["field"] == "sample.score"
+
+
+def test_a_retry_of_a_post_stored_by_version_0_1_is_still_a_retry(api: Api) -> None:
+    """Version 0.1 stored sha256 of the parsed body written out again as JSON (the code that
+    computed it, in its own words: json.dumps(body.model_dump(), sort_keys=True, default=str,
+    allow_nan=True)). A JSON retry after the upgrade still matches it."""
+    from service.api.schemas import SnapshotCreate
+
+    body = rich_body("old", step=1)
+    assert send(api, *encoded(body, "json")).status_code == 201
+    parsed = SnapshotCreate.model_validate(json.loads(json.dumps(body, allow_nan=True)))
+    old = json.dumps(parsed.model_dump(), sort_keys=True, default=str, allow_nan=True)
+    old_digest = "sha256:" + hashlib.sha256(old.encode("utf-8")).hexdigest()
+    engine = store_db.make_engine(api.settings)
+    with store_db.transaction(store_db.make_sessionmaker(engine)) as session:
+        snap = session.scalar(select(SnapshotRow).where(SnapshotRow.key == "old"))
+        assert snap is not None and snap.content_digest != old_digest
+        snap.content_digest = old_digest
+    engine.dispose()
+    assert send(api, *encoded(body, "json")).status_code == 200
+    changed = rich_body("old", step=1, seed=9)
+    assert send(api, *encoded(changed, "json")).status_code == 409
+
+
+def test_the_readme_lists_every_bad_binary_post() -> None:
+    from pathlib import Path
+
+    readme = (Path(__file__).resolve().parents[2] / "README.md").read_text("utf-8")
+    section = readme.split("Binary and compressed posts (", 1)[-1]
+    missing = [label for label, *_ in BAD_POSTS if f"| {label} |" not in section]
+    assert not missing, f"add these to the README's binary bad-input table: {missing}"
