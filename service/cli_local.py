@@ -161,17 +161,17 @@ def cmd_token(args: argparse.Namespace) -> int:
             return EXIT_OK
         from service.cli_table import moment, print_table
 
-        rows = []
+        table: list[list[object]] = []
         for v in views:
             state = (
                 f"revoked {moment(v['revoked_at'])}"
                 if v["revoked_at"]
                 else (f"last used {moment(v['last_used_at']) if v['last_used_at'] else 'never'}")
             )
-            rows.append(
+            table.append(
                 [v["id"], f"{v['prefix']}…", v["role"], ",".join(v["models"]), v["label"], state]
             )
-        print_table(["id", "prefix", "role", "models", "label", "state"], rows)
+        print_table(["id", "prefix", "role", "models", "label", "state"], table)
         return EXIT_OK
     # revoke
     with db.transaction(factory) as session:
