@@ -291,7 +291,8 @@ def test_open_mode_names_the_actor_from_the_command_line(
     server = Server(
         new_sqlite_url(sqlite_template, tmp_path), tmp_path, env={"TIDEGATE_AUTH": "open"}
     )
-    with server.start(timeout=300.0):
+    server.start(timeout=300.0)  # (not `with server:`, which would start a second one)
+    try:
         with Client(server.url) as gate:
             gate.submit("m", "k1", sample=frame_columns(13), trained_until=watermark(1))
             gate.submit("m", "k2", sample=frame_columns(14), trained_until=watermark(2))
@@ -312,6 +313,8 @@ def test_open_mode_names_the_actor_from_the_command_line(
         capsys.readouterr()
         assert cli.main(["audit", "--url", server.url, "--limit", "1"]) == 0
         out = capsys.readouterr().out
+    finally:
+        server.stop()
     assert "ana@bramble" in out.splitlines()[1] and "baseline.rollback" in out
 
 
