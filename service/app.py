@@ -15,11 +15,20 @@ from service.api.auth import TokenGate
 from service.api.deps import Database
 from service.api.errors import install_error_handlers
 from service.api.middleware import BodyLimit, RequestContext
-from service.api.routers import audit, health, models, overrides, snapshots, verdicts
+from service.api.routers import (
+    audit,
+    health,
+    models,
+    overrides,
+    serving,
+    snapshots,
+    verdicts,
+)
 from service.api.routers import metrics as metrics_routes
 from service.api.routers import policies as policy_routes
 from service.api.routers import tokens as token_routes
 from service.gate.policy import Policy, load_policies
+from service.heavy import Heavy
 from service.metrics import Metrics
 from service.settings import Settings
 from service.store import db as store_db
@@ -82,10 +91,12 @@ def create_app(
     app.state.clock = clock
     app.state.metrics = Metrics()
     app.state.dispatcher = paging.Dispatcher(settings, app.state.database.factory, clock=clock)
+    app.state.heavy = Heavy(slots=settings.heavy_concurrency)
     install_error_handlers(app)
     for router in (
         snapshots.router,
         models.router,
+        serving.router,
         verdicts.router,
         overrides.router,
         audit.router,
@@ -99,6 +110,7 @@ def create_app(
     ):
         app.include_router(router)
     web_auth.install(app)
+    snapshots.document_upload(app)
     # Added last = outermost: RequestContext -> BodyLimit -> TokenGate -> routes.
     app.add_middleware(TokenGate, settings=settings, database=app.state.database)
     app.add_middleware(BodyLimit, limit=settings.max_body_bytes)

@@ -159,16 +159,19 @@ def cmd_token(args: argparse.Namespace) -> int:
         if args.json:
             print_json(views)
             return EXIT_OK
+        from service.cli_table import moment, print_table
+
+        table: list[list[object]] = []
         for v in views:
             state = (
-                f"revoked {v['revoked_at']}"
+                f"revoked {moment(v['revoked_at'])}"
                 if v["revoked_at"]
-                else (f"last used {v['last_used_at'] or 'never'}")
+                else (f"last used {moment(v['last_used_at']) if v['last_used_at'] else 'never'}")
             )
-            print(
-                f"{v['id']:>4}  {v['prefix']}…  {v['role']:<8}  {','.join(v['models']):<20} "
-                f"{v['label']:<20} {state}"
+            table.append(
+                [v["id"], f"{v['prefix']}…", v["role"], ",".join(v["models"]), v["label"], state]
             )
+        print_table(["id", "prefix", "role", "models", "label", "state"], table)
         return EXIT_OK
     # revoke
     with db.transaction(factory) as session:

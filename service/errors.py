@@ -9,6 +9,7 @@ attributes; one handler in :mod:`service.api.errors` turns any of them into the 
     ├── NotFound (404, not_found)
     ├── Conflict (409, conflict)
     ├── PayloadTooLarge (413, payload_too_large)
+    ├── UnsupportedMediaType (415, unsupported_media_type)
     ├── Unauthorized (401, unauthorized)
     ├── Forbidden (403, forbidden)
     └── NotReady (503, not_ready)
@@ -77,6 +78,13 @@ class PayloadTooLarge(TidegateError):
 
     status = 413
     code = "payload_too_large"
+
+
+class UnsupportedMediaType(TidegateError):
+    """The body's Content-Type or Content-Encoding is not one the route reads."""
+
+    status = 415
+    code = "unsupported_media_type"
 
 
 class Unauthorized(TidegateError):

@@ -9,13 +9,14 @@ from __future__ import annotations
 
 import logging
 import time
-from collections.abc import Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta
 
+import numpy as np
 from sqlalchemy.orm import Session
 
-from service.errors import Conflict
+from service.errors import Conflict, InvalidInput
 from service.gate.evaluate import evaluate, failed_verdict
 from service.gate.policy import Policy, select_policy
 from service.gate.types import GateInput, Sample, Snapshot
@@ -38,6 +39,16 @@ class SnapshotPost:
     metrics: dict[str, float] = field(default_factory=dict)
     tags: dict[str, str] = field(default_factory=dict)
     sample: Sample | None = None
+    #: Text columns' (codes, distinct values), computed while validating; the store reuses them.
+    text_codes: Mapping[str, tuple[np.ndarray, list[str]]] = field(default_factory=dict)
+    #: The digest as version 0.1 computed it (JSON posts only; computed only when a stored
+    #: snapshot's digest differs), so a retry across the upgrade is still a retry.
+    legacy_digest: Callable[[], str] | None = None
+
+    def same_content(self, stored_digest: str) -> bool:
+        if stored_digest == self.content_digest:
+            return True
+        return self.legacy_digest is not None and stored_digest == self.legacy_digest()
 
 
 @dataclass(frozen=True)
@@ -65,6 +76,21 @@ def resolve_reference(
     return session.get(SnapshotRow, row.snapshot_id) if row is not None else None
 
 
+def require_sample(post: SnapshotPost, policy: Policy | None) -> None:
+    """Refuse a post without a sample unless *policy* judges reported metrics only
+    (``[sample] required = false``), and a sample with no rows always (README, "The post")."""
+    if post.sample is None:
+        if policy is None or policy.sample.required:
+            raise InvalidInput(
+                "a sample is required (with at least the score column); a policy that judges "
+                "reported metrics only says so with [sample] required = false"
+                + ("" if policy is not None else "; no policy matches this model"),
+                field="sample",
+            )
+    elif len(post.sample) == 0:
+        raise InvalidInput("the sample has no rows", field="sample.score")
+
+
 def submit(
     session: Session,
     *,
@@ -75,11 +101,22 @@ def submit(
     history_limit: int = 200,
     actor: str = "trainer",
 ) -> Submitted:
-    """Store *post* for *model_name*, judge it and store the verdict. Does not commit."""
+    """Store *post* for *model_name*, judge it and store the verdict. Does not commit.
+
+    Raises
+    ------
+    InvalidInput
+        The post has no sample and the model's policy does not judge reported metrics only,
+        or its sample has no rows (nothing is stored).
+    Conflict
+        The key was used for other content.
+    """
+    policy = select_policy(policies, model_name)
+    require_sample(post, policy)
     model = repo.get_or_create_model(session, name=model_name, now=now)
     existing = repo.get_snapshot(session, model_id=model.id, key=post.key)
     if existing is not None:
-        if existing.content_digest == post.content_digest:
+        if post.same_content(existing.content_digest):
             verdict_row = repo.verdict_for_snapshot(session, snapshot_id=existing.id)
             if verdict_row is not None:
                 return Submitted(model, existing, verdict_row, created=False)
@@ -101,8 +138,8 @@ def submit(
         content_digest=post.content_digest,
         sample=post.sample,
         now=now,
+        text_codes=post.text_codes,
     )
-    policy = select_policy(policies, model_name)
     baseline_row = repo.snapshot_by_id(session, snapshot_id=model.baseline_id)
     reference_row: SnapshotRow | None = None
     started = time.perf_counter()

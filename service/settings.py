@@ -37,7 +37,18 @@ class Settings(BaseSettings):
         200, ge=0, le=10000, description="Earlier verdicts of a model handed to the gate."
     )
     max_body_bytes: int = Field(
-        64 * 1024 * 1024, ge=1024, description="Largest request body accepted, in bytes."
+        128 * 1024 * 1024,
+        ge=1024,
+        description="Largest request body accepted, in bytes, after Content-Encoding is decoded "
+        "(2M rows of five 8-byte columns is 80 MB).",
+    )
+    heavy_concurrency: int = Field(
+        2,
+        ge=1,
+        le=64,
+        description="Heavy jobs (decoding and validating a posted sample, judging it) run at "
+        "once per process, each in a worker thread; more wait their turn. About the number of "
+        "cores.",
     )
     max_rows: int = Field(2_000_000, ge=1, description="Most sample rows in one post.")
     max_columns: int = Field(64, ge=1, description="Most sample columns in one post.")

@@ -79,6 +79,7 @@ def verdict_detail(session: Session, *, verdict: VerdictRow) -> dict[str, Any]:
             "overrides": [override_view(o) for o in overrides],
             "previous_verdict_id": prev_id,
             "next_verdict_id": next_id,
+            "serves_now": model.baseline_id == snapshot.id,
         }
     )
     return out
@@ -102,6 +103,7 @@ def snapshot_view(session: Session, *, model: ModelRow, snapshot: SnapshotRow) -
         "columns": columns,
         "summary": snapshot.summary,
         "sample_pruned_at": iso(snapshot.sample_pruned_at),
+        "content_digest": snapshot.content_digest,
         "created_at": iso(snapshot.created_at),
         "verdict_id": verdict.id if verdict else None,
         "is_baseline": model.baseline_id == snapshot.id,

@@ -9,9 +9,9 @@ from typing import Any
 import pytest
 
 from service import cli
-from service.client import TidegateClient
 from tests.api.test_snapshots import POLICY, body
 from tests.conftest import Harness
+from tidegate_client import Client as TidegateClient
 
 
 @pytest.fixture
@@ -67,7 +67,18 @@ def test_why_history_and_baseline(h: Harness, capsys: pytest.CaptureFixture[str]
     capsys.readouterr()
     assert cli.main(["history", "m"]) == 0
     lines = capsys.readouterr().out.strip().splitlines()
-    assert len(lines) == 2 and "s2" in lines[0] and "hold" in lines[0]
+    # a header row, then one row per verdict, times as `tidegate why` writes them (issue 14)
+    assert lines[0].split() == [
+        "VERDICT",
+        "JUDGED",
+        "AT",
+        "SNAPSHOT",
+        "DECISION",
+        "FIRST",
+        "REASON",
+    ]
+    assert len(lines) == 3 and "s2" in lines[1] and "hold" in lines[1]
+    assert "2026-12-01 02:00 UTC" in lines[1]
     assert cli.main(["baseline", "set", "m", "s2", "--reason", "checked by hand"]) == 0
     assert "baseline is now s2" in capsys.readouterr().out
 

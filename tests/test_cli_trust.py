@@ -64,6 +64,12 @@ def test_token_create_list_revoke(cli_env: Api, capsys: pytest.CaptureFixture[st
     assert "bramble-trainer" not in out
     code, out, _ = run(capsys, "token", "list", "--all", "--json")
     assert "bramble-trainer" in out
+    # the text table: a header row, times as everywhere else in the CLI (issue 14)
+    code, out, _ = run(capsys, "token", "list", "--all")
+    header, *rows = out.splitlines()
+    assert header.split() == ["ID", "PREFIX", "ROLE", "MODELS", "LABEL", "STATE"]
+    mine_row = next(r for r in rows if "bramble-trainer" in r)
+    assert "revoked 20" in mine_row and mine_row.endswith(" UTC")
     code, out, _ = run(capsys, "token", "revoke", str(mine["id"]))
     assert code == 0 and "already" in out
 

@@ -14,7 +14,7 @@ from fastapi.responses import JSONResponse
 from sqlalchemy.exc import OperationalError
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
-from service.errors import TidegateError
+from service.errors import InvalidInput, TidegateError
 
 log = logging.getLogger("tidegate.api")
 
@@ -94,16 +94,11 @@ def _not_json(request: Request, exc: RequestValidationError) -> bool:
     return body_level and not (ctype == "application/json" or ctype.endswith("+json"))
 
 
-async def _validation_error(request: Request, exc: Exception) -> JSONResponse:
-    assert isinstance(exc, RequestValidationError)
-    if _not_json(request, exc):
-        return error_response(
-            415,
-            "unsupported_media_type",
-            "send the body as JSON with Content-Type: application/json",
-        )
+def invalid_from_errors(errors: Sequence[Any]) -> InvalidInput:
+    """The 422 for a list of pydantic errors: the first error's field and message, every
+    error (at most 50) in ``details``, never the offending input."""
     details = []
-    for err in exc.errors()[:50]:
+    for err in list(errors)[:50]:
         kind = str(err.get("type", ""))
         message = str(err.get("msg", "invalid value"))
         if kind == "extra_forbidden":
@@ -121,9 +116,24 @@ async def _validation_error(request: Request, exc: Exception) -> JSONResponse:
         details.append({"field": field_path(loc) or None, "message": message, "type": kind})
     first = details[0] if details else {"field": None, "message": "invalid request"}
     code = "invalid_json" if first.get("type") == "json_invalid" else "invalid_request"
-    return error_response(
-        422, code, f"{first['field'] or 'request'}: {first['message']}", first["field"], details
+    return InvalidInput(
+        f"{first['field'] or 'request'}: {first['message']}",
+        field=first["field"],
+        code=code,
+        details=details,
     )
+
+
+async def _validation_error(request: Request, exc: Exception) -> JSONResponse:
+    assert isinstance(exc, RequestValidationError)
+    if _not_json(request, exc):
+        return error_response(
+            415,
+            "unsupported_media_type",
+            "send the body as JSON with Content-Type: application/json",
+        )
+    invalid = invalid_from_errors(exc.errors())
+    return JSONResponse(status_code=invalid.status, content=invalid.body())
 
 
 async def _http_error(_request: Request, exc: Exception) -> JSONResponse:

@@ -83,8 +83,8 @@ class SampleIn(BaseModel):
     )
 
 
-class SnapshotCreate(BaseModel):
-    """One snapshot posted by the retraining job."""
+class SnapshotMeta(BaseModel):
+    """One snapshot's fields without its sample: the ``snapshot`` part of a multipart post."""
 
     model_config = ConfigDict(extra="forbid")
 
@@ -99,6 +99,11 @@ class SnapshotCreate(BaseModel):
     metrics: dict[ShortText, FiniteFloat] = Field(
         default_factory=dict, description="Metrics the trainer computed itself."
     )
+
+
+class SnapshotCreate(SnapshotMeta):
+    """One snapshot posted by the retraining job."""
+
     sample: SampleIn | None = Field(None, description="Scored rows (see SampleIn).")
 
 
@@ -151,6 +156,9 @@ class VerdictPublic(VerdictSummary):
     overrides: list[OverridePublic]
     previous_verdict_id: int | None = None
     next_verdict_id: int | None = None
+    serves_now: bool = Field(
+        False, description="The snapshot is the one serving at the time of this answer."
+    )
 
 
 class VerdictList(BaseModel):
@@ -203,6 +211,10 @@ class SnapshotPublic(BaseModel):
     columns: list[str]
     summary: dict[str, Any] | None = None
     sample_pruned_at: str | None = None
+    content_digest: str = Field(
+        description="Digest of the post's content (README, 'Content digest'): a retry with "
+        "the same digest is answered with the stored verdict."
+    )
     created_at: str
     verdict_id: int | None = None
     is_baseline: bool
@@ -435,3 +447,31 @@ class DeliveryPublic(BaseModel):
 class DeliveryList(BaseModel):
     data: list[DeliveryPublic]
     count: int
+
+
+class AskedSnapshot(BaseModel):
+    """Where the snapshot asked about (``?snapshot=``) stands."""
+
+    snapshot: str
+    state: Literal["serves", "waiting", "superseded"] = Field(
+        description="serves: it is the baseline; superseded: a newer snapshot serves (only a "
+        "rollback would bring it back); waiting: an override to promote would make it serve."
+    )
+    verdict_id: int | None = None
+    decision: Literal["promote", "hold"] | None = None
+    effective_decision: Literal["promote", "hold"] | None = None
+
+
+class ServingPublic(BaseModel):
+    """The snapshot that serves now (what a deploy step ships)."""
+
+    model: str
+    snapshot: str | None = Field(description="Key of the serving snapshot; null: none yet.")
+    since: str | None = None
+    trained_until: str | None = None
+    cause: Literal["gate", "override", "manual", "rollback"] | None = None
+    verdict_id: int | None = None
+    audit_id: int | None = None
+    actor: str | None = None
+    reason: str | None = None
+    asked: AskedSnapshot | None = None

@@ -44,6 +44,11 @@ class SampleRules(BaseModel):
 
     model_config = ConfigDict(extra="forbid", frozen=True)
 
+    required: bool = Field(
+        True,
+        description="Posts must carry a sample (422 otherwise). false: the policy judges "
+        "reported metrics only, and a post without a sample skips the sample's health checks.",
+    )
     min_rows: int = Field(1000, ge=1, description="Fewer sample rows than this is a breach.")
     score_min: float | None = Field(0.0, description="Lowest allowed score; omit for no bound.")
     score_max: float | None = Field(1.0, description="Highest allowed score; omit for no bound.")

@@ -11,6 +11,7 @@ baseline changes (see repository functions).
 from __future__ import annotations
 
 import logging
+import sys
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
@@ -122,11 +123,20 @@ def storage_settings(engine: Engine) -> dict[str, str]:
     return {}
 
 
+def migrations_folder() -> Path:
+    """The Alembic scripts: ``migrations/`` of the source tree (an editable install), else the
+    copy a wheel installs under ``<prefix>/share/tidegate/migrations`` (pyproject.toml)."""
+    source = ROOT / "migrations"
+    if (source / "env.py").exists():
+        return source
+    return Path(sys.prefix) / "share" / "tidegate" / "migrations"
+
+
 def alembic_config(settings: Settings) -> Any:
     from alembic.config import Config
 
     cfg = Config()
-    cfg.set_main_option("script_location", str(ROOT / "migrations"))
+    cfg.set_main_option("script_location", str(migrations_folder()))
     cfg.set_main_option("sqlalchemy.url", settings.database_url.replace("%", "%%"))
     cfg.attributes["settings"] = settings
     return cfg

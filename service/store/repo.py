@@ -7,7 +7,7 @@ transaction commits once (see :func:`service.store.db.transaction`).
 from __future__ import annotations
 
 import base64
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from datetime import UTC, datetime
 from typing import Any
 
@@ -105,8 +105,10 @@ def add_snapshot(
     content_digest: str,
     sample: Sample | None,
     now: datetime,
+    text_codes: Mapping[str, codec.Factorized] | None = None,
 ) -> SnapshotRow:
-    """Insert a snapshot with its sample columns (compressed) and the score summary."""
+    """Insert a snapshot with its sample columns (compressed) and the score summary.
+    *text_codes* may hold the text columns' (codes, distinct values) already computed."""
     row = SnapshotRow(
         model_id=model_id,
         key=key,
@@ -124,7 +126,7 @@ def add_snapshot(
     session.add(row)
     session.flush()
     if sample is not None:
-        for name, codec_name, length, data in codec.encode_sample(sample):
+        for name, codec_name, length, data in codec.encode_sample(sample, text_codes):
             session.add(
                 SampleColumnRow(
                     snapshot_id=row.id, name=name, codec=codec_name, length=length, data=data
@@ -550,3 +552,32 @@ def verdict_counts_by_model(session: Session) -> dict[tuple[int, str], int]:
         VerdictRow.model_id, VerdictRow.decision
     )
     return {(int(m), str(d)): int(n) for m, d, n in session.execute(stmt)}
+
+
+# --- what serves ----------------------------------------------------------------------------
+
+
+def serving_promotion(session: Session, *, model: ModelRow) -> PromotionRow | None:
+    """The promotion that made the model's current baseline serve (its newest promotion of
+    that snapshot); None when nothing serves."""
+    if model.baseline_id is None:
+        return None
+    return session.scalars(
+        select(PromotionRow)
+        .where(PromotionRow.model_id == model.id, PromotionRow.snapshot_id == model.baseline_id)
+        .order_by(PromotionRow.id.desc())
+        .limit(1)
+    ).first()
+
+
+def audit_entry_at(
+    session: Session, *, model: str, at: datetime, actions: Sequence[str]
+) -> AuditRow | None:
+    """The newest audit entry of *model* with one of *actions* written at *at* (a change of
+    the baseline writes its promotion and its audit entry with the same time)."""
+    return session.scalars(
+        select(AuditRow)
+        .where(AuditRow.model == model, AuditRow.at == at, AuditRow.action.in_(list(actions)))
+        .order_by(AuditRow.id.desc())
+        .limit(1)
+    ).first()

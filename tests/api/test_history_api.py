@@ -7,9 +7,9 @@ from typing import Any
 import pytest
 
 from service import cli
-from service.client import TidegateClient
 from tests.api.test_snapshots import body
 from tests.conftest import Harness
+from tidegate_client import Client as TidegateClient
 
 POLICY = """
 models = ["*"]
@@ -126,8 +126,11 @@ def test_cli_models_and_reference(make_harness, monkeypatch, capsys) -> None:  #
     for i in range(1, 4):
         _post(h, f"s{i}", 15 * i, seed=i, shift=0.3)
     assert cli.main(["models"]) == 0
-    line = capsys.readouterr().out.strip()
-    assert line.startswith("m ") and "STUCK: stuck: 3 holds in a row" in line
+    header, line = capsys.readouterr().out.strip().splitlines()
+    assert header.startswith("MODEL ")
+    # the word "stuck" once, not "STUCK: stuck: ..." (issue 14)
+    assert line.startswith("m ") and "STUCK: 3 holds in a row" in line
+    assert line.lower().count("stuck") == 1
     assert cli.main(["reference", "pin", "m", "s0", "--reason", "known good"]) == 0
     assert "reference is now s0" in capsys.readouterr().out
     assert cli.main(["reference", "unpin", "m", "--reason", "done"]) == 0

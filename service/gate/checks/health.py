@@ -30,6 +30,18 @@ def _finding(check: str, breach: bool, message: str, **numbers: float | None) ->
 def health_findings(rules: SampleRules, candidate: Snapshot) -> list[Finding]:
     """Health findings for *candidate* under *rules*; no baseline needed."""
     sample = candidate.sample
+    if sample is None and not rules.required:
+        return [
+            Finding(
+                check="health.rows",
+                kind=KIND,
+                outcome="skipped",
+                message="no sample posted: the policy judges reported metrics only "
+                "([sample] required = false)",
+                statistic="rows",
+                blocking=True,
+            )
+        ]
     n = 0 if sample is None else len(sample)
     findings = [
         _finding(
