@@ -36,10 +36,10 @@ class Heavy:
         if slots < 1:
             raise ValueError("heavy work needs at least one slot")
         self.slots = slots
-        # Threads get their slot from this semaphore; async callers from the limiter below,
-        # which is sized the same, so together at most `slots` heavy jobs run at once.
+        # Every heavy job takes its slot from this one semaphore, in its worker thread. (An
+        # anyio limiter is bound to the event loop that first used it; the service may run
+        # several loops, e.g. one per test-client request, so the bound is a thread semaphore.)
         self._threads = threading.BoundedSemaphore(slots)
-        self._limiter = anyio.CapacityLimiter(slots)
         self._lock = threading.Lock()
         self._running = 0
         self._waiting = 0
@@ -88,9 +88,7 @@ class Heavy:
                 self._threads.release()
 
         try:
-            # The limiter keeps waiting jobs off the thread pool (a thread is taken only when
-            # a slot is likely free); the semaphore is what guarantees the bound.
-            return await anyio.to_thread.run_sync(call, limiter=self._limiter)
+            return await anyio.to_thread.run_sync(call)
         finally:
             if not entered:
                 self._count(waiting=-1)
