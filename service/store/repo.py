@@ -46,10 +46,14 @@ def utc(value: datetime | None) -> datetime | None:
 
 def get_model(session: Session, *, name: str, lock: bool = False) -> ModelRow | None:
     """The model called *name*; with ``lock`` its row is locked until commit (PostgreSQL
-    ``FOR UPDATE``; SQLite transactions already hold the write lock from BEGIN IMMEDIATE)."""
+    ``FOR UPDATE``; SQLite transactions already hold the write lock from BEGIN IMMEDIATE).
+
+    With ``lock`` the row's values are read afresh inside the lock, even when the session
+    already holds the row from an earlier, unlocked read (the session would otherwise keep
+    its cached baseline, replaced since by another writer: a broken chain)."""
     stmt = select(ModelRow).where(ModelRow.name == name)
     if lock:
-        stmt = stmt.with_for_update()
+        stmt = stmt.with_for_update().execution_options(populate_existing=True)
     return session.scalars(stmt).one_or_none()
 
 
