@@ -10,10 +10,11 @@ from datetime import UTC, datetime
 from fastapi import FastAPI
 
 from service import __version__, logs
+from service.api import docs
 from service.api.auth import TokenGate
 from service.api.deps import Database
 from service.api.errors import install_error_handlers
-from service.api.middleware import BodyLimit, RequestContext
+from service.api.middleware import BodyLimit, RequestContext, SecurityHeaders
 from service.api.routers import audit, health, models, overrides, snapshots, verdicts
 from service.api.routers import metrics as metrics_routes
 from service.api.routers import policies as policy_routes
@@ -62,6 +63,9 @@ def create_app(
         version=__version__,
         description="A release gate for incrementally retrained ranking and recommendation "
         "models: post a snapshot, get promote or hold with reasons and evidence.",
+        # the documentation page is served by service.api.docs, from local files
+        docs_url=None,
+        redoc_url=None,
     )
     app.state.settings = settings
     app.state.engine = engine
@@ -85,11 +89,13 @@ def create_app(
         web_routes.router,
         web_routes.root,
         web_auth.router,
+        docs.router,
     ):
         app.include_router(router)
     web_auth.install(app)
-    # Added last = outermost: RequestContext -> BodyLimit -> TokenGate -> routes.
+    # Added last = outermost: SecurityHeaders -> RequestContext -> BodyLimit -> TokenGate -> routes.
     app.add_middleware(TokenGate, settings=settings, database=app.state.database)
     app.add_middleware(BodyLimit, limit=settings.max_body_bytes)
     app.add_middleware(RequestContext, metrics=app.state.metrics)
+    app.add_middleware(SecurityHeaders)
     return app

@@ -26,7 +26,15 @@ class Settings(BaseSettings):
         False, description="Upgrade the database to the current revision when the service starts."
     )
     sqlite_busy_timeout_ms: int = Field(
-        10000, ge=0, description="How long a SQLite writer waits for the lock, in milliseconds."
+        10000, ge=0, description="How long a SQLite writer waits for the lock held by another process "
+        "(the command line, a second server), in milliseconds."
+    )
+    sqlite_write_wait_seconds: float = Field(
+        300.0,
+        gt=0,
+        description="How long a write may wait for its turn behind the other writes of the "
+        "same process (SQLite; they queue in arrival order), in seconds; past it the answer is "
+        "503 with Retry-After.",
     )
     sqlite_synchronous: Literal["FULL", "NORMAL", "EXTRA"] = Field(
         "FULL",

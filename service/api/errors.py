@@ -15,6 +15,7 @@ from sqlalchemy.exc import OperationalError
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service.errors import TidegateError
+from service.store.db import StorageBusy
 
 log = logging.getLogger("tidegate.api")
 
@@ -85,6 +86,14 @@ async def _storage_error(_request: Request, exc: Exception) -> JSONResponse:
     return response
 
 
+async def _storage_busy(_request: Request, exc: Exception) -> JSONResponse:
+    """The write's turn did not come within ``sqlite_write_wait_seconds``: nothing was stored."""
+    log.warning("storage busy: %s", exc)
+    response = error_response(503, "storage_busy", str(exc))
+    response.headers["Retry-After"] = "5"
+    return response
+
+
 def _not_json(request: Request, exc: RequestValidationError) -> bool:
     """A body sent with a Content-Type other than JSON (the body was not parsed at all)."""
     if request.method not in {"POST", "PUT", "PATCH"}:
@@ -150,4 +159,5 @@ def install_error_handlers(app: FastAPI) -> None:
     app.add_exception_handler(RequestValidationError, _validation_error)
     app.add_exception_handler(StarletteHTTPException, _http_error)
     app.add_exception_handler(OperationalError, _storage_error)
+    app.add_exception_handler(StorageBusy, _storage_busy)
     app.add_exception_handler(Exception, _unexpected)

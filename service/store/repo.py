@@ -27,6 +27,7 @@ from service.store.tables import (
     PolicyRow,
     PromotionRow,
     SampleColumnRow,
+    ServiceKeyRow,
     SnapshotRow,
     VerdictRow,
 )
@@ -539,3 +540,18 @@ def list_audit(
     if before_id is not None:
         stmt = stmt.where(AuditRow.id < before_id)
     return session.scalars(stmt.order_by(AuditRow.id.desc()).limit(limit)).all()
+
+
+# --- service keys -------------------------------------------------------------------------
+
+
+def service_key(session: Session, *, name: str, make: Any, now: datetime) -> str:
+    """The service secret called *name*, made with *make()* at first use (two workers making
+    it at once agree: insert-if-absent, then read)."""
+    found = session.get(ServiceKeyRow, name)
+    if found is not None:
+        return found.value
+    _insert_if_absent(
+        session, ServiceKeyRow, "name", {"name": name, "value": make(), "created_at": now}
+    )
+    return str(session.scalars(select(ServiceKeyRow.value).where(ServiceKeyRow.name == name)).one())

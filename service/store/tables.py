@@ -191,3 +191,14 @@ class TokenRow(Base):
     created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
     revoked_at: Mapped[datetime | None] = mapped_column(DateTime(timezone=True))
     last_used_at: Mapped[datetime | None] = mapped_column(DateTime(timezone=True))
+
+
+class ServiceKeyRow(Base):
+    """A secret of the service itself, made at first use and shared by every worker and
+    instance on the database (e.g. the key that signs the sign-in form's token)."""
+
+    __tablename__ = "service_keys"
+
+    name: Mapped[str] = mapped_column(String(40), primary_key=True)
+    value: Mapped[str] = mapped_column(String(200))
+    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))

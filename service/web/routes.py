@@ -67,6 +67,24 @@ def home() -> RedirectResponse:
     return RedirectResponse("/ui/", status_code=307)
 
 
+STATIC = Path(__file__).parent / "static"
+#: The files under ``/ui/static/`` (a fixed list: nothing else on disk is reachable).
+STATIC_FILES = {"tidegate.css": "text/css; charset=utf-8"}
+
+
+@router.get("/static/{name}", dependencies=[Depends(PUBLIC)])
+def static_file(name: Annotated[str, PathParam(max_length=40)]) -> Response:
+    """The pages' style sheet: public (the sign-in page needs it), cached for an hour."""
+    media = STATIC_FILES.get(name)
+    if media is None:
+        return Response("not found", status_code=404, media_type="text/plain")
+    return Response(
+        (STATIC / name).read_bytes(),
+        media_type=media,
+        headers={"Cache-Control": "public, max-age=3600"},
+    )
+
+
 def render(
     request: Request,
     template: str,
