@@ -22,6 +22,7 @@ from service.gate.evaluate import evaluate, failed_verdict
 from service.gate.policy import Policy
 from service.gate.types import GateInput
 from service.store import repo
+from service.text import shown
 from service.views import iso
 
 
@@ -69,7 +70,7 @@ def replay(
     """Replay the last *limit* verdicts of *model_name* under *policy* (see module doc)."""
     model = repo.get_model(session, name=model_name)
     if model is None:
-        raise NotFound(f"no model {model_name!r}", field="model")
+        raise NotFound(f"no model {shown(model_name)}", field="model")
     pairs, _ = repo.list_verdicts(session, model_id=model.id, limit=limit)
     pairs.reverse()
     overrides = repo.overrides_for(session, verdict_ids=[v.id for v, _ in pairs])

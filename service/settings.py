@@ -26,8 +26,10 @@ class Settings(BaseSettings):
         False, description="Upgrade the database to the current revision when the service starts."
     )
     sqlite_busy_timeout_ms: int = Field(
-        10000, ge=0, description="How long a SQLite writer waits for the lock held by another process "
-        "(the command line, a second server), in milliseconds."
+        10000,
+        ge=0,
+        description="How long a SQLite writer waits for the lock held by another process "
+        "(the command line, a second server), in milliseconds.",
     )
     sqlite_write_wait_seconds: float = Field(
         300.0,

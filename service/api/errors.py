@@ -16,6 +16,7 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service.errors import TidegateError
 from service.store.db import StorageBusy
+from service.text import shown
 
 log = logging.getLogger("tidegate.api")
 
@@ -40,13 +41,14 @@ def field_path(loc: Sequence[Any]) -> str:
     if parts and parts[0] in {"body", "query", "path", "header", "cookie"}:
         origin = parts.pop(0)
         if origin != "body" and parts:
-            return f"{origin}.{'.'.join(str(p) for p in parts)}"
+            return f"{origin}.{'.'.join(shown(p, quote=False) for p in parts)}"
     out = ""
     for part in parts:
         if isinstance(part, int):
             out += f"[{part}]"
         else:
-            out += ("." if out else "") + str(part)
+            # a dict key is input: a short escaped prefix of it only
+            out += ("." if out else "") + shown(part, quote=False)
     return out
 
 

@@ -16,6 +16,7 @@ from service.api.schemas import SampleIn
 from service.errors import InvalidInput
 from service.gate.types import NUMERIC_COLUMNS, TEXT_COLUMNS, Sample
 from service.settings import Settings
+from service.text import first_control, shown
 
 SEGMENT_NAME = re.compile(r"^segment\.[A-Za-z0-9_][A-Za-z0-9_.-]{0,63}$")
 
@@ -54,6 +55,12 @@ def _texts(name: str, values: list[Any], limit: int) -> np.ndarray:
                 f"{name} value longer than {limit} characters", field=f"sample.{name}[{i}]"
             )
         out[i] = text
+    bad = first_control(list(out))
+    if bad is not None:
+        raise InvalidInput(
+            f"{name} values may not hold control characters (C0, DEL, C1, NUL)",
+            field=f"sample.{name}[{bad}]",
+        )
     return out
 
 
@@ -70,7 +77,7 @@ def to_sample(payload: SampleIn, settings: Settings) -> Sample:
             raise InvalidInput(
                 "unknown sample column; extra columns must be named segment.<name> "
                 "(letters, digits, _ . -; at most 64 characters)",
-                field=f"sample.{name}".encode("utf-8", "backslashreplace").decode()[:300],
+                field=f"sample.{shown(name, quote=False)}",
             )
         if not isinstance(values, list):
             raise InvalidInput("a segment column must be an array", field=f"sample.{name}")
@@ -110,7 +117,7 @@ def to_sample(payload: SampleIn, settings: Settings) -> Sample:
             dup = uniques[np.argmax(counts > 1)]
             positions = np.nonzero(columns["row_id"].astype(str) == dup)[0]
             raise InvalidInput(
-                f"row_id {str(dup)!r} appears {int(counts[counts > 1][0])} times; row ids must "
+                f"row_id {shown(dup)} appears {int(counts[counts > 1][0])} times; row ids must "
                 "be unique",
                 field=f"sample.row_id[{int(positions[1])}]",
                 code="duplicate_row_id",

@@ -5,8 +5,9 @@ every transaction opened with ``BEGIN IMMEDIATE``. A deferred transaction that r
 writes can fail at once with "database is locked" (a busy snapshot) whatever the busy timeout;
 taking the write lock at BEGIN makes writers queue instead, so concurrent posts for one model are
 serialised. Before that, writers of one process queue in arrival order in a
-:class:`WriteQueue` (so the busy timeout is only a backstop between processes). PostgreSQL: the row of the model is locked with ``SELECT ... FOR UPDATE`` where the
-baseline changes (see repository functions).
+:class:`WriteQueue` (so the busy timeout is only a backstop between processes). PostgreSQL: the
+row of the model is locked with ``SELECT ... FOR UPDATE`` where the baseline changes (see
+repository functions).
 """
 
 from __future__ import annotations

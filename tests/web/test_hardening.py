@@ -71,7 +71,9 @@ def test_the_form_key_is_shared_by_every_app_on_the_database(make_api: object) -
     cookie = page.cookies.get("tidegate_form")
     other = browser(second)
     other.cookies.set("tidegate_form", cookie, path="/ui")
-    done = other.post("/ui/sign-in", data={"token": first.admin, "csrf_token": form_token(page.text)})
+    done = other.post(
+        "/ui/sign-in", data={"token": first.admin, "csrf_token": form_token(page.text)}
+    )
     assert done.status_code == 303
 
 
@@ -79,7 +81,8 @@ def test_docs_are_served_from_the_service(api: Api) -> None:
     page = api.client.get("/docs")
     assert page.status_code == 200
     sources = [
-        part.split('"', 2)[1] for part in page.text.split(" src=")[1:] + page.text.split(" href=")[1:]
+        part.split('"', 2)[1]
+        for part in page.text.split(" src=")[1:] + page.text.split(" href=")[1:]
     ]
     assert sources and all(s.startswith("/docs/assets/") for s in sources), sources
     for source in sources:

@@ -33,6 +33,7 @@ from service.errors import InvalidInput, NotFound
 from service.gate.policy import PolicyError, parse_policy, select_policy
 from service.replay import replay
 from service.store import repo
+from service.text import shown
 
 router = APIRouter(prefix="/v1/models", tags=["models"])
 
@@ -67,7 +68,7 @@ def get_model(
     with db.read() as session:
         row = repo.get_model(session, name=model)
         if row is None:
-            raise NotFound(f"no model {model!r}", field="model")
+            raise NotFound(f"no model {shown(model)}", field="model")
         return views.model_view(session, model=row, now=clock(), policies=policies)
 
 
@@ -95,7 +96,7 @@ def list_verdicts(
     with db.read() as session:
         row = repo.get_model(session, name=model)
         if row is None:
-            raise NotFound(f"no model {model!r}", field="model")
+            raise NotFound(f"no model {shown(model)}", field="model")
         rows, next_id = repo.list_verdicts(
             session,
             model_id=row.id,
@@ -161,7 +162,7 @@ def replay_model(
     if body.policy is None:
         policy = select_policy(policies, model)
         if policy is None:
-            raise InvalidInput(f"no policy matches model {model!r}; send one", field="policy")
+            raise InvalidInput(f"no policy matches model {shown(model)}; send one", field="policy")
     else:
         try:
             policy = parse_policy(body.policy, name="replay", path="(request)")
