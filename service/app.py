@@ -19,7 +19,8 @@ from service.api.routers import audit, health, models, overrides, snapshots, ver
 from service.api.routers import metrics as metrics_routes
 from service.api.routers import policies as policy_routes
 from service.api.routers import tokens as token_routes
-from service.gate.policy import Policy, load_policies
+from service.budget import Slots, over_resample_cap
+from service.gate.policy import Policy, PolicyError, load_policies
 from service.metrics import Metrics
 from service.settings import Settings
 from service.store import db as store_db
@@ -58,6 +59,10 @@ def create_app(
             extra=logs.fields(event="auth", auth="open"),
         )
     loaded = list(policies) if policies is not None else load_policies(settings.policy_dir)
+    for policy in loaded:
+        too_many = over_resample_cap(policy, settings.max_resamples)
+        if too_many is not None:
+            raise PolicyError(too_many, file=policy.path, key="resamples")
     app = FastAPI(
         title="tidegate",
         version=__version__,
@@ -75,6 +80,7 @@ def create_app(
     app.state.policies = loaded
     app.state.clock = clock
     app.state.metrics = Metrics()
+    app.state.replay_slots = Slots(settings.replay_slots, "replays")
     install_error_handlers(app)
     for router in (
         snapshots.router,

@@ -11,7 +11,8 @@ attributes; one handler in :mod:`service.api.errors` turns any of them into the 
     ├── PayloadTooLarge (413, payload_too_large)
     ├── Unauthorized (401, unauthorized)
     ├── Forbidden (403, forbidden)
-    └── NotReady (503, not_ready)
+    ├── NotReady (503, not_ready)
+    └── Busy (429, busy)                      with a Retry-After header
 """
 
 from __future__ import annotations
@@ -98,3 +99,14 @@ class NotReady(TidegateError):
 
     status = 503
     code = "not_ready"
+
+
+class Busy(TidegateError):
+    """Too much of this work is running already; retry after ``retry_after`` seconds."""
+
+    status = 429
+    code = "busy"
+
+    def __init__(self, message: str, *, retry_after: int = 10, **kwargs: Any) -> None:
+        super().__init__(message, **kwargs)
+        self.retry_after = retry_after

@@ -62,6 +62,25 @@ class Settings(BaseSettings):
     retention_days: int | None = Field(
         None, ge=1, description="Prune raw samples older than this many days (None: keep all)."
     )
+    max_resamples: int = Field(
+        10_000,
+        ge=10,
+        description="Most bootstrap resamples a check of a policy may ask for (policy files at "
+        "start, inline policies of a replay).",
+    )
+    replay_max_work: int = Field(
+        2_000_000_000,
+        ge=1,
+        description="Largest replay, in row-passes (sample rows of the replayed snapshots times "
+        "the policy's passes over each row: one per check plus its resamples); a larger one is "
+        "refused with 422 before any work.",
+    )
+    replay_max_seconds: float = Field(
+        60.0, gt=0, description="Wall-clock limit of one replay, in seconds (then 422)."
+    )
+    replay_slots: int = Field(
+        1, ge=1, le=64, description="Replays that may run at once in one process (then 429)."
+    )
     log_level: str = Field("INFO", description="Log level of the service.")
     shutdown_grace_seconds: int = Field(
         30,

@@ -14,7 +14,7 @@ from fastapi.responses import JSONResponse
 from sqlalchemy.exc import OperationalError
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
-from service.errors import TidegateError
+from service.errors import Busy, TidegateError
 from service.store.db import StorageBusy
 from service.text import shown
 
@@ -72,6 +72,8 @@ async def _tidegate_error(_request: Request, exc: Exception) -> JSONResponse:
     response = JSONResponse(status_code=exc.status, content=exc.body())
     if exc.status == 401:
         response.headers["WWW-Authenticate"] = 'Bearer realm="tidegate"'
+    if isinstance(exc, Busy):
+        response.headers["Retry-After"] = str(exc.retry_after)
     return response
 
 

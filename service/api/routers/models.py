@@ -5,7 +5,7 @@ from __future__ import annotations
 from datetime import datetime
 from typing import Annotated, Literal
 
-from fastapi import APIRouter, Query
+from fastapi import APIRouter, Query, Request
 
 from service import operate, views
 from service.api.deps import (
@@ -15,6 +15,7 @@ from service.api.deps import (
     OperatorDep,
     PoliciesDep,
     ReaderDep,
+    ReplayerDep,
     SettingsDep,
 )
 from service.api.routers.snapshots import ERRORS, ModelPath
@@ -29,6 +30,7 @@ from service.api.schemas import (
     ReplayRequest,
     VerdictList,
 )
+from service.budget import ReplayBudget, over_resample_cap
 from service.errors import InvalidInput, NotFound
 from service.gate.policy import PolicyError, parse_policy, select_policy
 from service.replay import replay
@@ -156,9 +158,12 @@ def replay_model(
     db: DbDep,
     policies: PoliciesDep,
     settings: SettingsDep,
-    principal: ReaderDep,
+    request: Request,
+    principal: ReplayerDep,
     model: str = ModelPath,
 ) -> dict[str, object]:
+    """Needs the ``replay`` action (operator, admin): a replay can cost a lot, shaped by the
+    policy sent (see service/budget.py for its limits)."""
     if body.policy is None:
         policy = select_policy(policies, model)
         if policy is None:
@@ -168,15 +173,22 @@ def replay_model(
             policy = parse_policy(body.policy, name="replay", path="(request)")
         except PolicyError as exc:
             raise InvalidInput(str(exc), field="policy", code="invalid_policy") from None
+    too_many = over_resample_cap(policy, settings.max_resamples)
+    if too_many is not None:
+        raise InvalidInput(too_many, field="policy", code="invalid_policy")
+    budget = ReplayBudget(
+        max_work=settings.replay_max_work, max_seconds=settings.replay_max_seconds
+    )
     # replay stores nothing: a read-only unit of work, which on SQLite takes no write lock (a
     # long replay must not hold up the trainers' posts)
-    with db.read() as session:
+    with request.app.state.replay_slots.hold(), db.read() as session:
         result = replay(
             session,
             model_name=model,
             policy=policy,
             limit=body.limit,
             history_limit=settings.history_limit,
+            budget=budget,
         )
     return result.to_dict()
 
