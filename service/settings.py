@@ -69,7 +69,7 @@ class Settings(BaseSettings):
         "start, inline policies of a replay).",
     )
     replay_max_work: int = Field(
-        2_000_000_000,
+        1_000_000_000,
         ge=1,
         description="Largest replay, in row-passes (sample rows of the replayed snapshots times "
         "the policy's passes over each row: one per check plus its resamples); a larger one is "

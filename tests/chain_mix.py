@@ -34,14 +34,27 @@ class MixResult:
     posts: dict[str, int] = field(default_factory=dict)
     #: acknowledged operator actions: (kind, detail)
     actions: list[tuple[str, Any]] = field(default_factory=list)
+    #: reasons of the acknowledged operator actions (each unique: found in the audit log)
+    reasons: list[str] = field(default_factory=list)
     unexpected: list[tuple[str, int, Any]] = field(default_factory=list)
     lock: threading.Lock = field(default_factory=threading.Lock)
+    #: set when the server went away (killed): the clients stop
+    stopped: threading.Event = field(default_factory=threading.Event)
+    #: called (under the lock) with the number of acknowledged changes after each one
+    on_ack: Callable[[int], None] | None = None
 
     def note(self, kind: str, status: int, body: Any) -> None:
         with self.lock:
             self.statuses.setdefault(kind, []).append(status)
-            if status not in ALLOWED:
+            if status == 0:
+                self.stopped.set()
+            elif status not in ALLOWED:
                 self.unexpected.append((kind, status, body))
+
+    def acknowledged(self) -> None:
+        """Count one acknowledged change (call under the lock)."""
+        if self.on_ack is not None:
+            self.on_ack(len(self.posts) + len(self.reasons))
 
     @property
     def counts(self) -> dict[str, int]:
@@ -51,6 +64,8 @@ class MixResult:
 def trainer(call: Call, result: MixResult, *, prefix: str, steps: list[int], rows: int) -> None:
     """Post one snapshot per step; every fourth is shifted far enough to be held."""
     for step in steps:
+        if result.stopped.is_set():
+            return
         body = snapshot_body(
             f"{prefix}-{step}", step=step, seed=step, rows=rows, shift=0.5 if step % 4 == 3 else 0
         )
@@ -59,14 +74,15 @@ def trainer(call: Call, result: MixResult, *, prefix: str, steps: list[int], row
         if status in (200, 201):
             with result.lock:
                 result.posts[body["key"]] = int(answer["verdict_id"])
+                result.acknowledged()
 
 
-def operator(call: Call, result: MixResult, *, seed: int, actions: int) -> None:
+def operator(call: Call, result: MixResult, *, seed: int, actions: int, tag: str = "") -> None:
     """Override a recent verdict to the decision not in force, roll back or set the baseline
     to a recent snapshot, pin or unpin the reference; chosen at random (seeded)."""
     rng = random.Random(seed)
     n = waits = 0
-    while n < actions:
+    while n < actions and not result.stopped.is_set():
         status, page = call("GET", f"/v1/models/{MODEL}/verdicts?limit=8", None)
         if (status == 404 or (status == 200 and not page["data"])) and waits < 2000:
             waits += 1  # no verdict yet: the trainers have not posted
@@ -78,7 +94,7 @@ def operator(call: Call, result: MixResult, *, seed: int, actions: int) -> None:
             continue
         verdict = rng.choice(page["data"])
         what = rng.random()
-        reason = {"reason": f"mixed workload {seed}-{n}"}
+        reason = {"reason": f"mixed workload {tag}{seed}-{n}"}
         if what < 0.5:
             decision = "hold" if verdict["effective_decision"] == "promote" else "promote"
             status, answer = call(
@@ -90,6 +106,8 @@ def operator(call: Call, result: MixResult, *, seed: int, actions: int) -> None:
             if status == 201:
                 with result.lock:
                     result.actions.append(("override", answer["override"]["id"]))
+                    result.reasons.append(reason["reason"])
+                    result.acknowledged()
         elif what < 0.8:
             status, answer = call(
                 "PUT", f"/v1/models/{MODEL}/baseline", {"snapshot": verdict["snapshot"], **reason}
@@ -98,6 +116,8 @@ def operator(call: Call, result: MixResult, *, seed: int, actions: int) -> None:
             if status == 200:
                 with result.lock:
                     result.actions.append(("baseline", (answer["baseline"], answer["cause"])))
+                    result.reasons.append(reason["reason"])
+                    result.acknowledged()
         else:
             key = verdict["snapshot"] if rng.random() < 0.6 else None
             status, answer = call(
@@ -107,6 +127,8 @@ def operator(call: Call, result: MixResult, *, seed: int, actions: int) -> None:
             if status == 200:
                 with result.lock:
                     result.actions.append(("reference", answer["reference"]))
+                    result.reasons.append(reason["reason"])
+                    result.acknowledged()
 
 
 def run_mix(
@@ -118,18 +140,38 @@ def run_mix(
     actions_per_operator: int = 12,
     rows: int = 60,
     prefix: str = "mix",
+    on_ack: Callable[[int], None] | None = None,
 ) -> MixResult:
     """Run the workload; *call_for(role)* gives a call function for 'trainer' or 'operator'
     (one per client thread). Watermarks of the trainers interleave."""
-    result = MixResult()
+    result = MixResult(on_ack=on_ack)
 
     def run(index: int) -> None:
         if index < trainers:
             steps = [i * trainers + index for i in range(posts_per_trainer)]
             trainer(call_for("trainer"), result, prefix=f"{prefix}{index}", steps=steps, rows=rows)
         else:
-            operator(call_for("operator"), result, seed=index, actions=actions_per_operator)
+            operator(
+                call_for("operator"), result, seed=index, actions=actions_per_operator, tag=prefix
+            )
 
     with ThreadPoolExecutor(trainers + operators) as pool:
         list(pool.map(run, range(trainers + operators)))
     return result
+
+
+def http_call(client: Any) -> Call:
+    """A call through an ``httpx.Client``; status 0 when the server is gone (killed)."""
+    import httpx
+
+    def call(method: str, path: str, body: dict[str, Any] | None) -> tuple[int, Any]:
+        try:
+            response = client.request(method, path, json=body)
+        except httpx.HTTPError as exc:
+            return 0, f"{type(exc).__name__}: {exc}"
+        try:
+            return response.status_code, response.json()
+        except ValueError:
+            return response.status_code, response.text
+
+    return call

@@ -15,22 +15,11 @@ import httpx
 import pytest
 
 from service import operate
-from tests.chain_mix import MODEL, Call, run_mix
+from tests.chain_mix import MODEL, Call, http_call, run_mix
 from tests.databases import Api, make_token, settings_for, snapshot_body
 from tests.invariants import chain_breaks, check_chain, check_store
 from tests.serverproc import Server
 from tests.test_server_process import backend, record
-
-
-def http_call(client: httpx.Client) -> Call:
-    def call(method: str, path: str, body: dict[str, Any] | None) -> tuple[int, Any]:
-        response = client.request(method, path, json=body)
-        try:
-            return response.status_code, response.json()
-        except ValueError:
-            return response.status_code, response.text
-
-    return call
 
 
 def test_the_chain_check_catches_an_override_on_a_stale_baseline(api: Api) -> None:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from contextlib import nullcontext
 from datetime import datetime
 from typing import Annotated, Literal
 
@@ -181,7 +182,14 @@ def replay_model(
     )
     # replay stores nothing: a read-only unit of work, which on SQLite takes no write lock (a
     # long replay must not hold up the trainers' posts)
-    with request.app.state.replay_slots.hold(), db.read() as session:
+    # one replay per process at most (429 past it); and, where the app bounds heavy work with a
+    # limiter of its own (app.state.heavy, shared with posts), a slot of it for the judging
+    heavy = getattr(request.app.state, "heavy", None)
+    with (
+        request.app.state.replay_slots.hold(),
+        heavy.slot() if heavy is not None else nullcontext(),
+        db.read() as session,
+    ):
         result = replay(
             session,
             model_name=model,
