@@ -213,7 +213,7 @@ def main() -> None:
                     with httpx.Client(base_url=base, timeout=600.0, headers=headers) as http:
                         t = time.perf_counter()
                         content = heavy_post.replace(b'"heavy"', f'"{key}"'.encode(), 1)
-                        r = http.post("/v1/models/m/snapshots", content=content)
+                        r = http.post("/v1/models/h/snapshots", content=content)
                         return f"post {r.status_code} in {time.perf_counter() - t:.1f} s"
 
                 return run

@@ -11,15 +11,20 @@
   past it the replay stops with 422 ``replay_time_limit`` (it stores nothing in any case).
 * **Concurrency**: at most ``replay_slots`` replays run at once in a process; one more is
   answered 429 ``busy`` with ``Retry-After`` at once (it does not queue, holding a thread).
+* **Priority**: a replay runs in a thread of its own with a lower CPU priority (Linux: the
+  thread's nice value +10), so that on a busy machine the operating system gives the event
+  loop (``/healthz``, the pages) the processor first.
 """
 
 from __future__ import annotations
 
+import os
 import threading
 import time
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass, field
+from typing import TypeVar
 
 from service.errors import Busy, InvalidInput
 from service.gate.policy import Policy
@@ -112,3 +117,35 @@ class Slots:
             yield
         finally:
             self._semaphore.release()
+
+
+T = TypeVar("T")
+
+#: How much lower the CPU priority of a background job's thread is (nice value increment).
+BACKGROUND_NICENESS = 10
+
+
+def in_background(fn: Callable[[], T]) -> T:
+    """Run *fn* in a new thread with a lower CPU priority (where the system allows it), wait
+    for it and return its result (or raise its exception). The thread ends with *fn*, so no
+    pooled thread keeps the lower priority."""
+    out: list[T] = []
+    failure: list[BaseException] = []
+
+    def run() -> None:
+        try:
+            if hasattr(os, "setpriority"):
+                try:
+                    os.setpriority(os.PRIO_PROCESS, threading.get_native_id(), BACKGROUND_NICENESS)
+                except OSError:  # not allowed here: run at the normal priority
+                    pass
+            out.append(fn())
+        except BaseException as exc:  # handed to the caller
+            failure.append(exc)
+
+    thread = threading.Thread(target=run, name="tidegate-background")
+    thread.start()
+    thread.join()
+    if failure:
+        raise failure[0]
+    return out[0]

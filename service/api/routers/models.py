@@ -31,7 +31,7 @@ from service.api.schemas import (
     ReplayRequest,
     VerdictList,
 )
-from service.budget import ReplayBudget, over_resample_cap
+from service.budget import ReplayBudget, in_background, over_resample_cap
 from service.errors import InvalidInput, NotFound
 from service.gate.policy import PolicyError, parse_policy, select_policy
 from service.replay import replay
@@ -190,13 +190,15 @@ def replay_model(
         heavy.slot() if heavy is not None else nullcontext(),
         db.read() as session,
     ):
-        result = replay(
-            session,
-            model_name=model,
-            policy=policy,
-            limit=body.limit,
-            history_limit=settings.history_limit,
-            budget=budget,
+        result = in_background(
+            lambda: replay(
+                session,
+                model_name=model,
+                policy=policy,
+                limit=body.limit,
+                history_limit=settings.history_limit,
+                budget=budget,
+            )
         )
     return result.to_dict()
 
