@@ -2,7 +2,8 @@
 
 The Swagger UI files come from the ``swagger-ui-bundle-v2`` package (Swagger UI 5, which reads
 OpenAPI 3.1; import name ``swagger_ui_bundle``; a runtime dependency: the version is the
-package's, nothing is copied by hand) and are served under ``/docs/assets/`` from a fixed list. The page starts the UI with a script file of its own (``docs.js``), since the
+package's, nothing is copied by hand) and are served under ``/docs/assets/`` from a fixed list.
+The page starts the UI with a script file of its own (``docs.js``), since the
 Content-Security-Policy allows no inline script.
 """
 
