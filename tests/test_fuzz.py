@@ -72,7 +72,7 @@ def test_fuzz_every_operation_from_the_openapi_schema(seeded: Api) -> None:
 
 
 #: Examples per operation and mode against a live server (``TIDEGATE_FUZZ_LIVE_EXAMPLES``).
-LIVE_EXAMPLES = int(os.environ.get("TIDEGATE_FUZZ_LIVE_EXAMPLES", "190"))
+LIVE_EXAMPLES = int(os.environ.get("TIDEGATE_FUZZ_LIVE_EXAMPLES", "200"))
 
 
 @pytest.mark.slow
@@ -106,7 +106,7 @@ def test_fuzz_a_live_server(database_url: str, tmp_path: Path) -> None:
         },
     )
     assert not any(status >= 500 for status in statuses)
-    if LIVE_EXAMPLES >= 190:
+    if LIVE_EXAMPLES >= 200:
         assert total >= 5000
 
 
