@@ -23,6 +23,7 @@ from service.api.routers.snapshots import ERRORS, ModelPath
 from service.api.schemas import (
     BaselinePublic,
     BaselineSet,
+    ErrorResponse,
     ModelList,
     ModelPublic,
     ReferencePublic,
@@ -151,7 +152,10 @@ def set_baseline(
 @router.post(
     "/{model}/replay",
     response_model=ReplayPublic,
-    responses=ERRORS,
+    responses={
+        **ERRORS,
+        429: {"model": ErrorResponse, "description": "A replay is running already; retry"},
+    },
     summary="Judge the model's past snapshots again under a policy; stores nothing",
 )
 def replay_model(
