@@ -11,10 +11,11 @@ from datetime import UTC, datetime
 from fastapi import FastAPI
 
 from service import __version__, logs, paging
+from service.api import docs
 from service.api.auth import TokenGate
 from service.api.deps import Database
 from service.api.errors import install_error_handlers
-from service.api.middleware import BodyLimit, RequestContext
+from service.api.middleware import BodyLimit, RequestContext, SecurityHeaders
 from service.api.routers import (
     audit,
     health,
@@ -27,7 +28,8 @@ from service.api.routers import (
 from service.api.routers import metrics as metrics_routes
 from service.api.routers import policies as policy_routes
 from service.api.routers import tokens as token_routes
-from service.gate.policy import Policy, load_policies
+from service.budget import Slots, over_resample_cap
+from service.gate.policy import Policy, PolicyError, load_policies
 from service.heavy import Heavy
 from service.metrics import Metrics
 from service.settings import Settings
@@ -67,6 +69,10 @@ def create_app(
             extra=logs.fields(event="auth", auth="open"),
         )
     loaded = list(policies) if policies is not None else load_policies(settings.policy_dir)
+    for policy in loaded:
+        too_many = over_resample_cap(policy, settings.max_resamples)
+        if too_many is not None:
+            raise PolicyError(too_many, file=policy.path, key="resamples")
 
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
@@ -81,6 +87,9 @@ def create_app(
         version=__version__,
         description="A release gate for incrementally retrained ranking and recommendation "
         "models: post a snapshot, get promote or hold with reasons and evidence.",
+        # the documentation page is served by service.api.docs, from local files
+        docs_url=None,
+        redoc_url=None,
     )
     app.state.settings = settings
     app.state.engine = engine
@@ -92,6 +101,7 @@ def create_app(
     app.state.metrics = Metrics()
     app.state.dispatcher = paging.Dispatcher(settings, app.state.database.factory, clock=clock)
     app.state.heavy = Heavy(slots=settings.heavy_concurrency)
+    app.state.replay_slots = Slots(settings.replay_slots, "replays")
     install_error_handlers(app)
     for router in (
         snapshots.router,
@@ -107,12 +117,14 @@ def create_app(
         web_routes.router,
         web_routes.root,
         web_auth.router,
+        docs.router,
     ):
         app.include_router(router)
     web_auth.install(app)
     snapshots.document_upload(app)
-    # Added last = outermost: RequestContext -> BodyLimit -> TokenGate -> routes.
+    # Added last = outermost: SecurityHeaders -> RequestContext -> BodyLimit -> TokenGate -> routes.
     app.add_middleware(TokenGate, settings=settings, database=app.state.database)
     app.add_middleware(BodyLimit, limit=settings.max_body_bytes)
     app.add_middleware(RequestContext, metrics=app.state.metrics)
+    app.add_middleware(SecurityHeaders)
     return app

@@ -12,7 +12,8 @@ attributes; one handler in :mod:`service.api.errors` turns any of them into the 
     ├── UnsupportedMediaType (415, unsupported_media_type)
     ├── Unauthorized (401, unauthorized)
     ├── Forbidden (403, forbidden)
-    └── NotReady (503, not_ready)
+    ├── NotReady (503, not_ready)
+    └── Busy (429, busy)                      with a Retry-After header
 """
 
 from __future__ import annotations
@@ -106,3 +107,14 @@ class NotReady(TidegateError):
 
     status = 503
     code = "not_ready"
+
+
+class Busy(TidegateError):
+    """Too much of this work is running already; retry after ``retry_after`` seconds."""
+
+    status = 429
+    code = "busy"
+
+    def __init__(self, message: str, *, retry_after: int = 10, **kwargs: Any) -> None:
+        super().__init__(message, **kwargs)
+        self.retry_after = retry_after

@@ -22,6 +22,7 @@ from service.gate.policy import Policy, select_policy
 from service.gate.types import GateInput, Sample, Snapshot
 from service.store import repo
 from service.store.tables import ModelRow, SnapshotRow, VerdictRow
+from service.text import shown
 
 log = logging.getLogger("tidegate.intake")
 
@@ -121,7 +122,7 @@ def submit(
             if verdict_row is not None:
                 return Submitted(model, existing, verdict_row, created=False)
         raise Conflict(
-            f"snapshot {post.key!r} of model {model_name!r} exists with other content; "
+            f"snapshot {shown(post.key)} of model {shown(model_name)} exists with other content; "
             "use a new key for a new snapshot",
             field="key",
         )

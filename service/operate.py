@@ -32,6 +32,7 @@ from sqlalchemy.orm import Session
 from service.errors import Conflict, InvalidInput, NotFound
 from service.store import repo
 from service.store.tables import ModelRow, OverrideRow, PromotionRow, SnapshotRow, VerdictRow
+from service.text import shown
 
 DECISIONS = ("promote", "hold")
 
@@ -69,7 +70,7 @@ def clean_reason(reason: str | None) -> str:
     if len(text) > 2000:
         raise InvalidInput("the reason is longer than 2000 characters", field="reason")
     if any(
-        (ord(c) < 32 and c not in "\t\n\r") or ord(c) == 127 or 0xD800 <= ord(c) <= 0xDFFF
+        (ord(c) < 32 and c not in "\t\n\r") or 127 <= ord(c) <= 159 or 0xD800 <= ord(c) <= 0xDFFF
         for c in text
     ):
         # PostgreSQL text cannot hold NUL; other control characters and lone surrogates are
@@ -198,14 +199,14 @@ def _baseline_target(
 def _locked_model(session: Session, *, model_name: str) -> ModelRow:
     model = repo.get_model(session, name=model_name, lock=True)
     if model is None:
-        raise NotFound(f"no model {model_name!r}", field="model")
+        raise NotFound(f"no model {shown(model_name)}", field="model")
     return model
 
 
 def _stored_snapshot(session: Session, *, model: ModelRow, key: str) -> SnapshotRow:
     snapshot = repo.get_snapshot(session, model_id=model.id, key=key)
     if snapshot is None:
-        raise NotFound(f"model {model.name!r} has no snapshot {key!r}", field="snapshot")
+        raise NotFound(f"model {model.name!r} has no snapshot {shown(key)}", field="snapshot")
     return snapshot
 
 

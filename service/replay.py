@@ -17,11 +17,13 @@ from typing import Any
 
 from sqlalchemy.orm import Session
 
+from service.budget import ReplayBudget
 from service.errors import NotFound
 from service.gate.evaluate import evaluate, failed_verdict
 from service.gate.policy import Policy
 from service.gate.types import GateInput
 from service.store import repo
+from service.text import shown
 from service.views import iso
 
 
@@ -64,14 +66,29 @@ class ReplayResult:
 
 
 def replay(
-    session: Session, *, model_name: str, policy: Policy, limit: int, history_limit: int = 200
+    session: Session,
+    *,
+    model_name: str,
+    policy: Policy,
+    limit: int,
+    history_limit: int = 200,
+    budget: ReplayBudget | None = None,
 ) -> ReplayResult:
-    """Replay the last *limit* verdicts of *model_name* under *policy* (see module doc)."""
+    """Replay the last *limit* verdicts of *model_name* under *policy* (see module doc).
+
+    With *budget*, the work is estimated from stored row counts before anything is judged, and
+    the wall clock is checked between snapshots (InvalidInput past either limit)."""
     model = repo.get_model(session, name=model_name)
     if model is None:
-        raise NotFound(f"no model {model_name!r}", field="model")
+        raise NotFound(f"no model {shown(model_name)}", field="model")
     pairs, _ = repo.list_verdicts(session, model_id=model.id, limit=limit, details=True)
     pairs.reverse()
+    if budget is not None:
+        rows_of = _sample_rows(session, ids={v.baseline_id for v, _ in pairs} - {None})
+        budget.check_estimate(
+            policy,
+            [snap.sample_rows + rows_of.get(verdict.baseline_id, 0) for verdict, snap in pairs],
+        )
     overrides = repo.overrides_for(session, verdict_ids=[v.id for v, _ in pairs])
     result = ReplayResult(model_name, policy.name, policy.digest)
     depth = max(history_limit, policy.history_depth())
@@ -91,6 +108,8 @@ def replay(
     # so the history before the j-th oldest of them starts right after it, newest first.
     window = repo.history(session, model_id=model.id, limit=depth + len(pairs))
     for j, (verdict, snap) in enumerate(pairs):
+        if budget is not None:
+            budget.check_time(j, len(pairs))
         candidate = gate_snapshot(snap.id)
         baseline = gate_snapshot(verdict.baseline_id)
         try:
@@ -126,3 +145,18 @@ def replay(
             }
         )
     return result
+
+
+def _sample_rows(session: Session, *, ids: set[int | None]) -> dict[int | None, int]:
+    """Sample rows of the snapshots *ids* (stored counts; nothing is decoded)."""
+    from sqlalchemy import select
+
+    from service.store.tables import SnapshotRow
+
+    wanted = [i for i in ids if i is not None]
+    if not wanted:
+        return {}
+    rows = session.execute(
+        select(SnapshotRow.id, SnapshotRow.sample_rows).where(SnapshotRow.id.in_(wanted))
+    ).all()
+    return {sid: n or 0 for sid, n in rows}

@@ -26,7 +26,17 @@ class Settings(BaseSettings):
         False, description="Upgrade the database to the current revision when the service starts."
     )
     sqlite_busy_timeout_ms: int = Field(
-        10000, ge=0, description="How long a SQLite writer waits for the lock, in milliseconds."
+        10000,
+        ge=0,
+        description="How long a SQLite writer waits for the lock held by another process "
+        "(the command line, a second server), in milliseconds.",
+    )
+    sqlite_write_wait_seconds: float = Field(
+        300.0,
+        gt=0,
+        description="How long a write may wait for its turn behind the other writes of the "
+        "same process (SQLite; they queue in arrival order), in seconds; past it the answer is "
+        "503 with Retry-After.",
     )
     sqlite_synchronous: Literal["FULL", "NORMAL", "EXTRA"] = Field(
         "FULL",
@@ -62,6 +72,25 @@ class Settings(BaseSettings):
     )
     retention_days: int | None = Field(
         None, ge=1, description="Prune raw samples older than this many days (None: keep all)."
+    )
+    max_resamples: int = Field(
+        10_000,
+        ge=10,
+        description="Most bootstrap resamples a check of a policy may ask for (policy files at "
+        "start, inline policies of a replay).",
+    )
+    replay_max_work: int = Field(
+        1_000_000_000,
+        ge=1,
+        description="Largest replay, in row-passes (sample rows of the replayed snapshots times "
+        "the policy's passes over each row: one per check plus its resamples); a larger one is "
+        "refused with 422 before any work.",
+    )
+    replay_max_seconds: float = Field(
+        60.0, gt=0, description="Wall-clock limit of one replay, in seconds (then 422)."
+    )
+    replay_slots: int = Field(
+        1, ge=1, le=64, description="Replays that may run at once in one process (then 429)."
     )
     log_level: str = Field("INFO", description="Log level of the service.")
     shutdown_grace_seconds: int = Field(

@@ -17,6 +17,9 @@ import httpx
 from tests.databases import TEST_POLICY_TEXT
 
 ROOT = Path(__file__).resolve().parent.parent
+#: How long a server may take to start, stop or exit, in seconds (readiness is polled; this is
+#: only the limit, reached only when something is wrong).
+START_TIMEOUT = float(os.environ.get("TIDEGATE_TEST_START_TIMEOUT", "300"))
 
 
 def free_port() -> int:
@@ -53,7 +56,10 @@ class Server:
     def log_path(self) -> Path:
         return self.folder / f"server-{self.port}-{self.starts}.log"
 
-    def start(self, timeout: float = 60.0) -> Server:
+    def start(self, timeout: float = START_TIMEOUT) -> Server:
+        """Start the server and wait until it is ready (``/readyz`` answers 200: the database
+        answers and is migrated), at most *timeout* seconds. Generous: on a loaded 2-core
+        machine three workers importing numpy and scipy take a minute or more."""
         self.starts += 1
         env = {
             **{k: v for k, v in os.environ.items() if not k.startswith("TIDEGATE_")},
@@ -85,11 +91,11 @@ class Server:
             if self.proc.poll() is not None:
                 raise RuntimeError(f"server exited with {self.proc.returncode}:\n{self.log()}")
             try:
-                if httpx.get(f"{self.url}/healthz", timeout=1.0).status_code == 200:
+                if httpx.get(f"{self.url}/readyz", timeout=10.0).status_code == 200:
                     return self
             except httpx.HTTPError:
                 pass
-            time.sleep(0.1)
+            time.sleep(0.2)
         self.kill()
         raise RuntimeError(f"server did not answer within {timeout} s:\n{self.log()}")
 
@@ -110,7 +116,7 @@ class Server:
             self.signal(signal.SIGKILL)
             self.proc.wait(timeout=30)
 
-    def wait(self, timeout: float = 60.0) -> int:
+    def wait(self, timeout: float = START_TIMEOUT) -> int:
         assert self.proc is not None
         return self.proc.wait(timeout=timeout)
 
@@ -118,7 +124,7 @@ class Server:
         if self.proc is not None and self.proc.poll() is None:
             self.proc.send_signal(signal.SIGTERM)
             try:
-                self.proc.wait(timeout=30)
+                self.proc.wait(timeout=START_TIMEOUT)
             except subprocess.TimeoutExpired:
                 self.kill()
 

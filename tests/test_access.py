@@ -75,6 +75,7 @@ class World:
             "key": "k1",
             "verdict_id": str(self.verdict_id),
             "token_id": str(tokens_made(self.api)),
+            "name": "tidegate.css",
         }
         return re.sub(r"\{(\w+)\}", lambda m: values[m.group(1)], path)
 

@@ -9,9 +9,13 @@ every run), no example database. The number of cases run is printed and written 
 
 from __future__ import annotations
 
+import os
+import time
 from collections import Counter
+from pathlib import Path
 from typing import Any
 
+import httpx
 import pytest
 import schemathesis
 from hypothesis import HealthCheck, given, settings
@@ -25,8 +29,9 @@ from schemathesis.specs.openapi.checks import (
     status_code_conformance,
 )
 
-from tests.databases import Api, snapshot_body
-from tests.test_server_process import record
+from tests.databases import Api, make_token, settings_for, snapshot_body
+from tests.serverproc import Server
+from tests.test_server_process import backend, record
 
 EXAMPLES = 25
 ADMIN_TOKEN_ID = 1  # make_api makes the admin token first
@@ -49,9 +54,68 @@ def seeded(make_api: Any) -> Api:
 def test_fuzz_every_operation_from_the_openapi_schema(seeded: Api) -> None:
     api = seeded
     schema = schemathesis.openapi.from_asgi("/openapi.json", api.app)
-    # the admin token must survive the fuzzing: a generated DELETE /v1/tokens/{id} may not
-    # revoke it, so its id is never generated
-    headers = api.headers()
+    cases, statuses, operations = fuzz(schema, api.headers(), EXAMPLES)
+    total = sum(cases.values())
+    record(
+        f"fuzz-{api.settings.database_url.split(':')[0].split('+')[0]}",
+        {
+            "cases": total,
+            "operations": len(cases),
+            "examples_per_operation_and_mode": EXAMPLES,
+            "statuses": dict(sorted(statuses.items())),
+        },
+    )
+    # every operation ran (those without parameters have a single distinct case)
+    assert set(cases) == {f"{op.method.upper()} {op.path}" for op in operations}
+    assert len(cases) >= 14 and total >= 10 * EXAMPLES
+    assert not any(status >= 500 for status in statuses)
+
+
+#: Examples per operation and mode against a live server (``TIDEGATE_FUZZ_LIVE_EXAMPLES``).
+LIVE_EXAMPLES = int(os.environ.get("TIDEGATE_FUZZ_LIVE_EXAMPLES", "200"))
+
+
+@pytest.mark.slow
+def test_fuzz_a_live_server(database_url: str, tmp_path: Path) -> None:
+    """The same checks against ``tidegate serve`` over HTTP (a real uvicorn, real sockets),
+    at least 5,000 cases per database; 0 failures (a failure raises at once)."""
+    settings = settings_for(database_url)
+    admin = make_token(settings, "admin", label="fuzz-admin")
+    assert admin.id == ADMIN_TOKEN_ID  # the token the fuzzing must not revoke
+    with Server(database_url, tmp_path) as server:
+        headers = {"Authorization": f"Bearer {admin.secret}"}
+        with httpx.Client(base_url=server.url, headers=headers, timeout=120.0) as http:
+            for step, key in enumerate(("a", "b", "c"), start=1):
+                posted = http.post(
+                    "/v1/models/shelf-ranker/snapshots", json=snapshot_body(key, step=step)
+                )
+                assert posted.status_code == 201, posted.text
+        schema = schemathesis.openapi.from_url(f"{server.url}/openapi.json")
+        started = time.perf_counter()
+        cases, statuses, _ = fuzz(schema, headers, LIVE_EXAMPLES)
+        seconds = time.perf_counter() - started
+    total = sum(cases.values())
+    record(
+        f"fuzz-live-{backend(database_url)}",
+        {
+            "cases": total,
+            "operations": len(cases),
+            "examples_per_operation_and_mode": LIVE_EXAMPLES,
+            "seconds": round(seconds, 1),
+            "statuses": dict(sorted(statuses.items())),
+        },
+    )
+    assert not any(status >= 500 for status in statuses)
+    if LIVE_EXAMPLES >= 200:
+        assert total >= 5000
+
+
+def fuzz(
+    schema: Any, headers: dict[str, str], examples: int
+) -> tuple[Counter[str], Counter[int], list[Any]]:
+    """Run every operation of *schema*, *examples* cases per generation mode; any failed
+    check raises. The admin token must survive the fuzzing: a generated
+    ``DELETE /v1/tokens/{id}`` may not revoke it, so its id is never generated."""
     cases: Counter[str] = Counter()
     statuses: Counter[int] = Counter()
     operations = [result.ok() for result in schema.get_all_operations()]
@@ -60,7 +124,7 @@ def test_fuzz_every_operation_from_the_openapi_schema(seeded: Api) -> None:
         checks = CHECKS + ([negative_data_rejection] if mode is GenerationMode.NEGATIVE else [])
 
         @settings(
-            max_examples=EXAMPLES,
+            max_examples=examples,
             deadline=None,
             derandomize=True,
             database=None,
@@ -85,17 +149,4 @@ def test_fuzz_every_operation_from_the_openapi_schema(seeded: Api) -> None:
             except Unsatisfiable:
                 # nothing to make invalid (an operation without parameters or body)
                 assert mode is GenerationMode.NEGATIVE, operation.path
-    total = sum(cases.values())
-    record(
-        f"fuzz-{api.settings.database_url.split(':')[0].split('+')[0]}",
-        {
-            "cases": total,
-            "operations": len(cases),
-            "examples_per_operation_and_mode": EXAMPLES,
-            "statuses": dict(sorted(statuses.items())),
-        },
-    )
-    # every operation ran (those without parameters have a single distinct case)
-    assert set(cases) == {f"{op.method.upper()} {op.path}" for op in operations}
-    assert len(cases) >= 14 and total >= 10 * EXAMPLES
-    assert not any(status >= 500 for status in statuses)
+    return cases, statuses, operations

@@ -20,6 +20,7 @@ from sqlalchemy import func, select
 from service.api.middleware import BodyLimit
 from service.store import db as store_db
 from service.store.tables import Base
+from service.text import has_control
 from tests.databases import Api, snapshot_body
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -130,6 +131,30 @@ BAD_INPUTS = [
     Bad("key missing", 422, "invalid_request", "key", remover("key")),
     Bad("key with a slash", 422, "invalid_request", "key", setter("key", value="a/b")),
     Bad("key with a control character", 422, "invalid_request", "key", setter("key", value="a\nb")),
+    Bad("key .", 422, "invalid_request", "key", setter("key", value=".")),
+    Bad("key ..", 422, "invalid_request", "key", setter("key", value="..")),
+    Bad("key with U+0085 (NEL)", 422, "invalid_request", "key", setter("key", value="a\x85b")),
+    Bad(
+        "tag name with a C1 control character",
+        422,
+        "invalid_request",
+        "tags.te\\x9bam.[key]",
+        setter("tags", value={"te\x9bam": "x"}),
+    ),
+    Bad(
+        "metric name with NUL",
+        422,
+        "invalid_request",
+        "metrics.a\\x00uc.[key]",
+        setter("metrics", value={"a\x00uc": 0.5}),
+    ),
+    Bad(
+        "tag name of 300 characters with control characters",
+        422,
+        "invalid_request",
+        "tags." + "\\x01" * 40 + "....[key]",
+        setter("tags", value={"\x01" * 300: "x"}),
+    ),
     Bad(
         "key longer than 200 characters",
         422,
@@ -341,6 +366,20 @@ BAD_INPUTS = [
         setter("sample", "segment.device", 0, value="\udfff"),
     ),
     Bad(
+        "segment value with NUL",
+        422,
+        "invalid_request",
+        "sample.segment.device[0]",
+        setter("sample", "segment.device", 0, value="a\x00pp"),
+    ),
+    Bad(
+        "segment value with U+0085 (NEL)",
+        422,
+        "invalid_request",
+        "sample.segment.device[0]",
+        setter("sample", "segment.device", 0, value="a\x85pp"),
+    ),
+    Bad(
         "segment value longer than 200 characters",
         422,
         "invalid_request",
@@ -481,6 +520,13 @@ def test_every_bad_input_gets_its_error_and_stores_nothing(limited: Api) -> None
             )
         assert error.get("message"), case.label
         assert all("input" not in d for d in error.get("details", [])), case.label
+        # errors quote input only as a short escaped prefix: no control character comes back,
+        # and no field path is longer than a short prefix of a name would make it
+        echoed = [error.get("message") or "", error.get("field") or ""] + [
+            str(d.get(k) or "") for d in error.get("details", []) for k in ("field", "message")
+        ]
+        assert not any(has_control(text) for text in echoed), case.label
+        assert len(error.get("field") or "") <= 200, case.label
     assert not wrong, "\n".join(wrong)
     assert row_counts(api) == before  # not a row more, for any of them
 

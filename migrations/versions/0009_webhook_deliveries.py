@@ -1,7 +1,7 @@
 """webhook deliveries: the outbox of hold, stuck and override events
 
 Revision ID: 0009
-Revises: 0002
+Revises: 0005
 Create Date: 2026-12-02 08:00:00
 """
 
@@ -13,7 +13,7 @@ import sqlalchemy as sa
 from alembic import op
 
 revision: str = "0009"
-down_revision: str | None = "0002"
+down_revision: str | None = "0005"
 branch_labels: str | Sequence[str] | None = None
 depends_on: str | Sequence[str] | None = None
 

@@ -77,7 +77,8 @@ def lookup(database: Database, secret: str, *, now: datetime) -> Principal | Non
         stale = last is None or now - last > tokens.LAST_USED_EVERY
     if stale:
         try:
-            with transaction(database.factory) as session:
+            # a short wait: noting the use is not worth queueing behind a long post
+            with transaction(database.factory, wait=1.0) as session:
                 fresh = session.get(TokenRow, principal.token_id)
                 if fresh is not None:
                     fresh.last_used_at = now

@@ -39,12 +39,14 @@ class Database:
 
 #: What each role may do. ``read``: see models, verdicts, snapshots, policies, audit;
 #: ``submit``: post snapshots; ``operate``: override verdicts, set or roll back baselines, pin
-#: references; ``admin``: tokens and everything else.
+#: references; ``replay``: judge past snapshots again under a policy sent with the request
+#: (costly work a caller shapes: operators, who change what policies do, and admins);
+#: ``admin``: tokens and everything else.
 ROLE_ACTIONS: dict[str, frozenset[str]] = {
     "viewer": frozenset({"read"}),
     "trainer": frozenset({"read", "submit"}),
-    "operator": frozenset({"read", "operate"}),
-    "admin": frozenset({"read", "submit", "operate", "admin"}),
+    "operator": frozenset({"read", "operate", "replay"}),
+    "admin": frozenset({"read", "submit", "operate", "replay", "admin"}),
 }
 
 
@@ -83,6 +85,7 @@ ACTION_WORDS = {
     "submit": "post snapshots",
     "operate": "override verdicts or set baselines",
     "admin": "manage tokens",
+    "replay": "replay past snapshots under a policy",
 }
 
 
@@ -223,3 +226,4 @@ ReaderDep = Annotated[Principal, Depends(Allowed("read"))]
 TrainerDep = Annotated[Principal, Depends(Allowed("submit"))]
 OperatorDep = Annotated[Principal, Depends(Allowed("operate"))]
 AdminDep = Annotated[Principal, Depends(Allowed("admin"))]
+ReplayerDep = Annotated[Principal, Depends(Allowed("replay"))]

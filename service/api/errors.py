@@ -14,7 +14,9 @@ from fastapi.responses import JSONResponse
 from sqlalchemy.exc import OperationalError
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
-from service.errors import InvalidInput, TidegateError
+from service.errors import Busy, InvalidInput, TidegateError
+from service.store.db import StorageBusy
+from service.text import shown
 
 log = logging.getLogger("tidegate.api")
 
@@ -39,13 +41,14 @@ def field_path(loc: Sequence[Any]) -> str:
     if parts and parts[0] in {"body", "query", "path", "header", "cookie"}:
         origin = parts.pop(0)
         if origin != "body" and parts:
-            return f"{origin}.{'.'.join(str(p) for p in parts)}"
+            return f"{origin}.{'.'.join(shown(p, quote=False) for p in parts)}"
     out = ""
     for part in parts:
         if isinstance(part, int):
             out += f"[{part}]"
         else:
-            out += ("." if out else "") + str(part)
+            # a dict key is input: a short escaped prefix of it only
+            out += ("." if out else "") + shown(part, quote=False)
     return out
 
 
@@ -69,6 +72,8 @@ async def _tidegate_error(_request: Request, exc: Exception) -> JSONResponse:
     response = JSONResponse(status_code=exc.status, content=exc.body())
     if exc.status == 401:
         response.headers["WWW-Authenticate"] = 'Bearer realm="tidegate"'
+    if isinstance(exc, Busy):
+        response.headers["Retry-After"] = str(exc.retry_after)
     return response
 
 
@@ -82,6 +87,14 @@ async def _storage_error(_request: Request, exc: Exception) -> JSONResponse:
         "the database did not complete the request; nothing was stored, retry later",
     )
     response.headers["Retry-After"] = "1"
+    return response
+
+
+async def _storage_busy(_request: Request, exc: Exception) -> JSONResponse:
+    """The write's turn did not come within ``sqlite_write_wait_seconds``: nothing was stored."""
+    log.warning("storage busy: %s", exc)
+    response = error_response(503, "storage_busy", str(exc))
+    response.headers["Retry-After"] = "5"
     return response
 
 
@@ -160,4 +173,5 @@ def install_error_handlers(app: FastAPI) -> None:
     app.add_exception_handler(RequestValidationError, _validation_error)
     app.add_exception_handler(StarletteHTTPException, _http_error)
     app.add_exception_handler(OperationalError, _storage_error)
+    app.add_exception_handler(StorageBusy, _storage_busy)
     app.add_exception_handler(Exception, _unexpected)

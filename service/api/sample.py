@@ -24,6 +24,7 @@ from service.api.schemas import SampleIn
 from service.errors import InvalidInput
 from service.gate.types import LOG_COLUMNS, MODEL_COLUMNS, NUMERIC_COLUMNS, TEXT_COLUMNS, Sample
 from service.settings import Settings
+from service.text import has_control, shown
 
 SEGMENT_NAME = re.compile(r"^segment\.[A-Za-z0-9_][A-Za-z0-9_.-]{0,63}$")
 HUGE_INT = 10**100
@@ -44,7 +45,7 @@ def check_name(name: str) -> None:
         raise InvalidInput(
             "unknown sample column; extra columns must be named segment.<name> "
             "(letters, digits, _ . -; at most 64 characters)",
-            field=f"sample.{name}".encode("utf-8", "backslashreplace").decode()[:300],
+            field=f"sample.{shown(name, quote=False)}",
         )
 
 
@@ -114,6 +115,11 @@ def text_from_codes(
                 f"{name} value longer than {limit} characters",
                 field=f"sample.{name}[{int(np.argmax(codes == k))}]",
             )
+        if has_control(text):
+            raise InvalidInput(
+                f"{name} values may not hold control characters (C0, DEL, C1, NUL)",
+                field=f"sample.{name}[{int(np.argmax(codes == k))}]",
+            )
         texts.append(text)
     codes = np.ascontiguousarray(codes, dtype="<u4")
     if len(set(texts)) != len(texts):  # 7 and "7" are one text: merge their codes
@@ -157,7 +163,7 @@ def check_row_ids(codes: np.ndarray, texts: list[str]) -> None:
     value = texts[int(codes[first_dup])]
     count = int(np.count_nonzero(codes == codes[first_dup]))
     raise InvalidInput(
-        f"row_id {value!r} appears {count} times; row ids must be unique",
+        f"row_id {shown(value)} appears {count} times; row ids must be unique",
         field=f"sample.row_id[{first_dup}]",
         code="duplicate_row_id",
     )

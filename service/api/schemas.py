@@ -4,20 +4,43 @@ from __future__ import annotations
 
 from typing import Annotated, Any, Literal
 
-from pydantic import AwareDatetime, BaseModel, ConfigDict, Field, Strict, StringConstraints
+from pydantic import (
+    AfterValidator,
+    AwareDatetime,
+    BaseModel,
+    ConfigDict,
+    Field,
+    Strict,
+    StringConstraints,
+)
+
+from service.text import DOT_KEYS
 
 # Input types. Numbers are strict (JSON numbers only: no true/false, no "0.5" text); text has
 # no control characters (PostgreSQL text cannot hold NUL; pydantic already refuses lone
 # surrogates); integers that reach the database fit its 64-bit columns.
+# Control characters are C0, DEL and C1 (U+0085 included); see service/text.py.
+
+
+def _not_dots(value: str) -> str:
+    if value in DOT_KEYS:
+        raise ValueError(
+            "'.' and '..' are not keys (a page address holding one means another page)"
+        )
+    return value
+
+
 Key = Annotated[
-    str, StringConstraints(min_length=1, max_length=200, pattern=r"^[^/\\\x00-\x1f\x7f]+$")
+    str,
+    StringConstraints(min_length=1, max_length=200, pattern=r"^[^/\\\x00-\x1f\x7f-\x9f]+$"),
+    AfterValidator(_not_dots),
 ]
-ShortText = Annotated[str, StringConstraints(max_length=200, pattern=r"^[^\x00-\x1f\x7f]*$")]
+ShortText = Annotated[str, StringConstraints(max_length=200, pattern=r"^[^\x00-\x1f\x7f-\x9f]*$")]
 #: Free text (reasons): line breaks and tabs allowed, other control characters not.
 FreeText = Annotated[
     str,
     StringConstraints(
-        min_length=1, max_length=2000, pattern=r"^[^\x00-\x08\x0b\x0c\x0e-\x1f\x7f]*$"
+        min_length=1, max_length=2000, pattern=r"^[^\x00-\x08\x0b\x0c\x0e-\x1f\x7f-\x9f]*$"
     ),
 ]
 Number = Annotated[float, Strict()]
@@ -289,7 +312,7 @@ class OverrideCreate(BaseModel):
             strip_whitespace=True,
             min_length=1,
             max_length=2000,
-            pattern=r"^[^\x00-\x08\x0b\x0c\x0e-\x1f\x7f]*$",
+            pattern=r"^[^\x00-\x08\x0b\x0c\x0e-\x1f\x7f-\x9f]*$",
         ),
     ] = Field(description="Why (required; kept with the override and in the audit log).")
 

@@ -4,14 +4,18 @@ SQLite: WAL journal, foreign keys on, a busy timeout, the synchronous level from
 every transaction opened with ``BEGIN IMMEDIATE``. A deferred transaction that reads and then
 writes can fail at once with "database is locked" (a busy snapshot) whatever the busy timeout;
 taking the write lock at BEGIN makes writers queue instead, so concurrent posts for one model are
-serialised. PostgreSQL: the row of the model is locked with ``SELECT ... FOR UPDATE`` where the
-baseline changes (see repository functions).
+serialised. Before that, writers of one process queue in arrival order in a
+:class:`WriteQueue` (so the busy timeout is only a backstop between processes). PostgreSQL: the
+row of the model is locked with ``SELECT ... FOR UPDATE`` where the baseline changes (see
+repository functions).
 """
 
 from __future__ import annotations
 
 import logging
 import sys
+import threading
+from collections import deque
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
@@ -64,6 +68,11 @@ def make_engine(settings: Settings) -> Engine:
             else:
                 conn.exec_driver_sql("BEGIN IMMEDIATE")
 
+        setattr(
+            engine,
+            _QUEUE_ATTRIBUTE,
+            (write_queue(engine.url.database or ""), float(settings.sqlite_write_wait_seconds)),
+        )
         return engine
     return create_engine(url, pool_pre_ping=True)
 
@@ -76,9 +85,120 @@ def make_sessionmaker(engine: Engine) -> sessionmaker[Session]:
     return sessionmaker(engine, expire_on_commit=False)
 
 
+class WriteQueue:
+    """First come, first served turns at writing one SQLite database, for the threads of this
+    process.
+
+    SQLite lets one writer at a time hold its lock; the others wait in its busy handler, which
+    sleeps and retries, is not fair, and gives up after the busy timeout ("database is
+    locked"). Writers of one process instead queue here, before their transaction begins, in
+    arrival order, and each hands the turn to the next when it commits or rolls back; so the
+    busy timeout is only a backstop against writers of other processes (the command line, a
+    second server). A thread that already holds the turn (a write inside a write) goes on.
+    """
+
+    def __init__(self) -> None:
+        self._lock = threading.Lock()
+        self._owner: int | None = None
+        self._depth = 0
+        self._waiters: deque[tuple[int, threading.Event]] = deque()
+
+    @property
+    def waiting(self) -> int:
+        """Threads waiting for a turn now."""
+        with self._lock:
+            return len(self._waiters)
+
+    def acquire(self, timeout: float) -> bool:
+        """Wait up to *timeout* seconds for the turn; False when it did not come."""
+        me = threading.get_ident()
+        with self._lock:
+            if self._owner == me:
+                self._depth += 1
+                return True
+            if self._owner is None and not self._waiters:
+                self._owner, self._depth = me, 1
+                return True
+            event = threading.Event()
+            self._waiters.append((me, event))
+        if event.wait(timeout):
+            return True
+        with self._lock:
+            if event.is_set():  # handed over as the wait ended
+                return True
+            self._waiters.remove((me, event))
+            return False
+
+    def release(self) -> None:
+        with self._lock:
+            assert self._owner == threading.get_ident(), "released by a thread without the turn"
+            self._depth -= 1
+            if self._depth:
+                return
+            if self._waiters:
+                owner, event = self._waiters.popleft()
+                self._owner, self._depth = owner, 1
+                event.set()
+            else:
+                self._owner = None
+
+    @contextmanager
+    def turn(self, timeout: float) -> Iterator[None]:
+        if not self.acquire(timeout):
+            raise StorageBusy(
+                f"other writes kept the database busy for {timeout:g} s; nothing was stored, "
+                "retry later"
+            )
+        try:
+            yield
+        finally:
+            self.release()
+
+
+class StorageBusy(RuntimeError):
+    """The turn to write did not come in time (nothing was written; a retry is safe)."""
+
+
+_QUEUES: dict[str, WriteQueue] = {}
+_QUEUES_LOCK = threading.Lock()
+#: Attribute of a SQLite engine holding (its database's write queue, the longest wait).
+_QUEUE_ATTRIBUTE = "tidegate_write_queue"
+
+
+def write_queue(database: str) -> WriteQueue:
+    """The write queue of the SQLite file *database* (one per file and process, shared by
+    every engine on it)."""
+    name = database if database in {"", ":memory:"} else str(Path(database).resolve())
+    with _QUEUES_LOCK:
+        return _QUEUES.setdefault(name, WriteQueue())
+
+
+def engine_write_queue(engine: Engine) -> tuple[WriteQueue, float] | None:
+    """The write queue of *engine* and how long a writer may wait in it (None: not SQLite)."""
+    found = getattr(engine, _QUEUE_ATTRIBUTE, None)
+    return found if isinstance(found, tuple) else None
+
+
 @contextmanager
-def transaction(factory: sessionmaker[Session]) -> Iterator[Session]:
-    """One session that commits once at the end, or rolls back on any error."""
+def transaction(factory: sessionmaker[Session], *, wait: float | None = None) -> Iterator[Session]:
+    """One session that commits once at the end, or rolls back on any error.
+
+    On SQLite the transaction first waits for its turn in the database's :class:`WriteQueue`
+    (at most *wait* seconds, default the ``sqlite_write_wait_seconds`` setting); StorageBusy
+    when the turn does not come."""
+    bind = factory.kw.get("bind")
+    queued = engine_write_queue(bind) if isinstance(bind, Engine) else None
+    if queued is None:
+        with _transaction(factory) as session:
+            yield session
+        return
+    queue, longest = queued
+    with queue.turn(longest if wait is None else wait), _transaction(factory) as session:
+        yield session
+
+
+@contextmanager
+def _transaction(factory: sessionmaker[Session]) -> Iterator[Session]:
     session = factory()
     try:
         yield session

@@ -26,6 +26,7 @@ from service.store.tables import (
     PolicyRow,
     PromotionRow,
     SampleColumnRow,
+    ServiceKeyRow,
     SnapshotRow,
     VerdictRow,
 )
@@ -45,10 +46,14 @@ def utc(value: datetime | None) -> datetime | None:
 
 def get_model(session: Session, *, name: str, lock: bool = False) -> ModelRow | None:
     """The model called *name*; with ``lock`` its row is locked until commit (PostgreSQL
-    ``FOR UPDATE``; SQLite transactions already hold the write lock from BEGIN IMMEDIATE)."""
+    ``FOR UPDATE``; SQLite transactions already hold the write lock from BEGIN IMMEDIATE).
+
+    With ``lock`` the row's values are read afresh inside the lock, even when the session
+    already holds the row from an earlier, unlocked read (the session would otherwise keep
+    its cached baseline, replaced since by another writer: a broken chain)."""
     stmt = select(ModelRow).where(ModelRow.name == name)
     if lock:
-        stmt = stmt.with_for_update()
+        stmt = stmt.with_for_update().execution_options(populate_existing=True)
     return session.scalars(stmt).one_or_none()
 
 
@@ -581,3 +586,18 @@ def audit_entry_at(
         .order_by(AuditRow.id.desc())
         .limit(1)
     ).first()
+
+
+# --- service keys -------------------------------------------------------------------------
+
+
+def service_key(session: Session, *, name: str, make: Any, now: datetime) -> str:
+    """The service secret called *name*, made with *make()* at first use (two workers making
+    it at once agree: insert-if-absent, then read)."""
+    found = session.get(ServiceKeyRow, name)
+    if found is not None:
+        return found.value
+    _insert_if_absent(
+        session, ServiceKeyRow, "name", {"name": name, "value": make(), "created_at": now}
+    )
+    return str(session.scalars(select(ServiceKeyRow.value).where(ServiceKeyRow.name == name)).one())

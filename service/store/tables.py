@@ -265,3 +265,14 @@ class FindingValueRow(Base):
     interval_high: Mapped[float | None] = mapped_column(Float)
     #: ``Finding.details["learn"]``: further quantities a check may learn from, name -> number.
     learn: Mapped[dict[str, Any] | None] = mapped_column(JSON)
+
+
+class ServiceKeyRow(Base):
+    """A secret of the service itself, made at first use and shared by every worker and
+    instance on the database (e.g. the key that signs the sign-in form's token)."""
+
+    __tablename__ = "service_keys"
+
+    name: Mapped[str] = mapped_column(String(40), primary_key=True)
+    value: Mapped[str] = mapped_column(String(200))
+    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))

@@ -8,7 +8,12 @@ handler calls :func:`verify` before it changes anything.
   (HttpOnly) nor compute the HMAC without it; every worker and instance computes the same value,
   so no server-side state is needed.
 * Not signed in (the sign-in form itself, and open mode): a random value in a cookie of its own,
-  repeated in the form (the "double submit" pattern); a forged form cannot know the cookie.
+  and in the form its HMAC-SHA256 keyed by a secret of the service (made at first use and kept
+  in the database, so every worker and instance shares it; see ``service_keys``). A forged form
+  cannot know the cookie; and a cookie planted by someone who can set cookies for the site
+  (a sibling subdomain, a plain-HTTP answer) does not help either, since the form value must
+  be signed by the service: the sign-in form cannot be forged to sign a person in as someone
+  else ("login CSRF").
 
 Both cookies are ``SameSite=Strict``, so browsers do not send them with requests started by
 another site at all; the form token is the second line of defence.
@@ -44,6 +49,37 @@ def _hmac_token(secret: str) -> str:
     return base64.urlsafe_b64encode(mac).decode().rstrip("=")
 
 
+#: Name of the service key that signs the form cookie (``service_keys`` table).
+FORM_KEY = "form-signing"
+_KEY_CACHE = "form_signing_key"
+
+
+def _service_key(request: Request) -> bytes:
+    """The service's form-signing secret (read once per process, made at first use)."""
+    cached = getattr(request.app.state, _KEY_CACHE, None)
+    if isinstance(cached, bytes):
+        return cached
+    from datetime import UTC, datetime
+
+    from service.store import repo
+
+    with request.app.state.database.transaction() as session:
+        value = repo.service_key(
+            session,
+            name=FORM_KEY,
+            make=lambda: secrets.token_urlsafe(48),
+            now=datetime.now(UTC),
+        )
+    key = value.encode("utf-8")
+    setattr(request.app.state, _KEY_CACHE, key)
+    return key
+
+
+def _signed(request: Request, nonce: str) -> str:
+    mac = hmac.new(_service_key(request), LABEL + b"|" + nonce.encode(), hashlib.sha256)
+    return base64.urlsafe_b64encode(mac.digest()).decode().rstrip("=")
+
+
 def token_for(request: Request) -> str:
     """The token to put in the forms of a page answering *request*."""
     secret = _session_secret(request)
@@ -53,7 +89,7 @@ def token_for(request: Request) -> str:
     if not value:
         value = secrets.token_urlsafe(32)
         setattr(request.state, _STATE, value)  # attach() sets the cookie on the response
-    return str(value)
+    return _signed(request, str(value))
 
 
 def attach(request: Request, response: Response) -> Response:
@@ -74,7 +110,11 @@ def attach(request: Request, response: Response) -> Response:
 def verify(request: Request, token: str | None) -> None:
     """Raise Forbidden unless *token* is the one :func:`token_for` gives for *request*."""
     secret = _session_secret(request)
-    expected = _hmac_token(secret) if secret is not None else request.cookies.get(FORM_COOKIE)
+    cookie = request.cookies.get(FORM_COOKIE)
+    if secret is not None:
+        expected: str | None = _hmac_token(secret)
+    else:
+        expected = _signed(request, cookie) if cookie else None
     if not token or not expected or not hmac.compare_digest(token.encode(), expected.encode()):
         raise Forbidden(
             "the form did not come from this service or is out of date; reload the page and "

@@ -35,6 +35,7 @@ from service.evidence import DEFAULT_BINS
 from service.gate.policy import select_policy
 from service.store import deliveries, history_values, repo
 from service.store.tables import ModelRow, SnapshotRow, VerdictRow
+from service.text import shown
 from service.web import csrf, format, svg, trends
 from service.web.auth import SESSION_COOKIE
 from service.web.deps import WebOperatorDep, WebReaderDep
@@ -67,6 +68,24 @@ def home() -> RedirectResponse:
     return RedirectResponse("/ui/", status_code=307)
 
 
+STATIC = Path(__file__).parent / "static"
+#: The files under ``/ui/static/`` (a fixed list: nothing else on disk is reachable).
+STATIC_FILES = {"tidegate.css": "text/css; charset=utf-8"}
+
+
+@router.get("/static/{name}", dependencies=[Depends(PUBLIC)])
+def static_file(name: Annotated[str, PathParam(max_length=40)]) -> Response:
+    """The pages' style sheet: public (the sign-in page needs it), cached for an hour."""
+    media = STATIC_FILES.get(name)
+    if media is None:
+        return Response("not found", status_code=404, media_type="text/plain")
+    return Response(
+        (STATIC / name).read_bytes(),
+        media_type=media,
+        headers={"Cache-Control": "public, max-age=3600"},
+    )
+
+
 def render(
     request: Request,
     template: str,
@@ -97,13 +116,13 @@ def error_page(
 def _require(principal: Principal, action: str, model: str) -> None:
     if not principal.allows(action, model):
         verb = "see" if action == "read" else "change"
-        raise Forbidden(f"{principal.name} ({principal.role}) may not {verb} {model!r}")
+        raise Forbidden(f"{principal.name} ({principal.role}) may not {verb} {shown(model)}")
 
 
 def _model(session: Session, name: str) -> ModelRow:
     row = repo.get_model(session, name=name)
     if row is None:
-        raise NotFound(f"no model {name!r}", field="model")
+        raise NotFound(f"no model {shown(name)}", field="model")
     return row
 
 
@@ -306,10 +325,10 @@ def _verdict_by_key(session: Session, model: str, key: str) -> tuple[VerdictRow,
     row = _model(session, model)
     snap = repo.get_snapshot(session, model_id=row.id, key=key)
     if snap is None:
-        raise NotFound(f"model {model!r} has no snapshot {key!r}", field="key")
+        raise NotFound(f"model {shown(model)} has no snapshot {shown(key)}", field="key")
     verdict = repo.verdict_for_snapshot(session, snapshot_id=snap.id)
     if verdict is None:
-        raise NotFound(f"snapshot {key!r} has no verdict", field="key")
+        raise NotFound(f"snapshot {shown(key)} has no verdict", field="key")
     return verdict, row
 
 

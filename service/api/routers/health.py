@@ -13,7 +13,9 @@ router = APIRouter(tags=["health"], dependencies=[Depends(PUBLIC)])
 
 
 @router.get("/healthz", response_model=Health, summary="The process is up")
-def healthz() -> dict[str, object]:
+async def healthz() -> dict[str, object]:
+    # on the event loop itself, not in the thread pool: it answers while every worker thread
+    # is busy with heavy posts or replays
     return {"status": "ok", "detail": {}}
 
 

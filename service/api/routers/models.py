@@ -2,10 +2,11 @@
 
 from __future__ import annotations
 
+from contextlib import nullcontext
 from datetime import datetime
 from typing import Annotated, Literal
 
-from fastapi import APIRouter, Query
+from fastapi import APIRouter, Query, Request
 
 from service import operate, paging, views
 from service.api.deps import (
@@ -15,6 +16,7 @@ from service.api.deps import (
     OperatorDep,
     PoliciesDep,
     ReaderDep,
+    ReplayerDep,
     SettingsDep,
 )
 from service.api.routers.snapshots import ERRORS, ModelPath
@@ -22,6 +24,7 @@ from service.api.schemas import (
     BaselinePublic,
     BaselineSet,
     DeliveryList,
+    ErrorResponse,
     ModelList,
     ModelPublic,
     ReferencePublic,
@@ -30,10 +33,12 @@ from service.api.schemas import (
     ReplayRequest,
     VerdictList,
 )
+from service.budget import ReplayBudget, in_background, over_resample_cap
 from service.errors import InvalidInput, NotFound
 from service.gate.policy import PolicyError, parse_policy, select_policy
 from service.replay import replay
 from service.store import deliveries, repo
+from service.text import shown
 
 router = APIRouter(prefix="/v1/models", tags=["models"])
 
@@ -68,7 +73,7 @@ def get_model(
     with db.read() as session:
         row = repo.get_model(session, name=model)
         if row is None:
-            raise NotFound(f"no model {model!r}", field="model")
+            raise NotFound(f"no model {shown(model)}", field="model")
         return views.model_view(session, model=row, now=clock(), policies=policies)
 
 
@@ -96,7 +101,7 @@ def list_verdicts(
     with db.read() as session:
         row = repo.get_model(session, name=model)
         if row is None:
-            raise NotFound(f"no model {model!r}", field="model")
+            raise NotFound(f"no model {shown(model)}", field="model")
         rows, next_id = repo.list_verdicts(
             session,
             model_id=row.id,
@@ -148,7 +153,10 @@ def set_baseline(
 @router.post(
     "/{model}/replay",
     response_model=ReplayPublic,
-    responses=ERRORS,
+    responses={
+        **ERRORS,
+        429: {"model": ErrorResponse, "description": "A replay is running already; retry"},
+    },
     summary="Judge the model's past snapshots again under a policy; stores nothing",
 )
 def replay_model(
@@ -156,27 +164,46 @@ def replay_model(
     db: DbDep,
     policies: PoliciesDep,
     settings: SettingsDep,
-    principal: ReaderDep,
+    request: Request,
+    principal: ReplayerDep,
     model: str = ModelPath,
 ) -> dict[str, object]:
+    """Needs the ``replay`` action (operator, admin): a replay can cost a lot, shaped by the
+    policy sent (see service/budget.py for its limits)."""
     if body.policy is None:
         policy = select_policy(policies, model)
         if policy is None:
-            raise InvalidInput(f"no policy matches model {model!r}; send one", field="policy")
+            raise InvalidInput(f"no policy matches model {shown(model)}; send one", field="policy")
     else:
         try:
             policy = parse_policy(body.policy, name="replay", path="(request)")
         except PolicyError as exc:
             raise InvalidInput(str(exc), field="policy", code="invalid_policy") from None
+    too_many = over_resample_cap(policy, settings.max_resamples)
+    if too_many is not None:
+        raise InvalidInput(too_many, field="policy", code="invalid_policy")
+    budget = ReplayBudget(
+        max_work=settings.replay_max_work, max_seconds=settings.replay_max_seconds
+    )
     # replay stores nothing: a read-only unit of work, which on SQLite takes no write lock (a
     # long replay must not hold up the trainers' posts)
-    with db.read() as session:
-        result = replay(
-            session,
-            model_name=model,
-            policy=policy,
-            limit=body.limit,
-            history_limit=settings.history_limit,
+    # one replay per process at most (429 past it); and, where the app bounds heavy work with a
+    # limiter of its own (app.state.heavy, shared with posts), a slot of it for the judging
+    heavy = getattr(request.app.state, "heavy", None)
+    with (
+        request.app.state.replay_slots.hold(),
+        heavy.slot() if heavy is not None else nullcontext(),
+        db.read() as session,
+    ):
+        result = in_background(
+            lambda: replay(
+                session,
+                model_name=model,
+                policy=policy,
+                limit=body.limit,
+                history_limit=settings.history_limit,
+                budget=budget,
+            )
         )
     return result.to_dict()
 

@@ -21,6 +21,7 @@ from service.api.schemas import (
 from service.errors import InvalidInput, NotFound
 from service.heavy import Heavy
 from service.store import repo
+from service.text import shown
 
 router = APIRouter(prefix="/v1/models/{model}/snapshots", tags=["snapshots"])
 
@@ -172,10 +173,10 @@ def get_snapshot(
     with db.read() as session:
         model_row = repo.get_model(session, name=model)
         if model_row is None:
-            raise NotFound(f"no model {model!r}", field="model")
+            raise NotFound(f"no model {shown(model)}", field="model")
         snapshot = repo.get_snapshot(session, model_id=model_row.id, key=key)
         if snapshot is None:
-            raise NotFound(f"model {model!r} has no snapshot {key!r}", field="key")
+            raise NotFound(f"model {shown(model)} has no snapshot {shown(key)}", field="key")
         return views.snapshot_view(session, model=model_row, snapshot=snapshot)
 
 
