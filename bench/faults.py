@@ -50,12 +50,11 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
-from typing import Any
 
 import numpy as np
 from scipy.stats import beta as beta_dist
 from sqlalchemy import create_engine
-from sqlalchemy.orm import Session, sessionmaker
+from sqlalchemy.orm import sessionmaker
 
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
@@ -64,7 +63,7 @@ from service.gate.policy import Policy, load_policies  # noqa: E402
 from service.gate.types import Sample  # noqa: E402
 from service.intake import SnapshotPost, submit  # noqa: E402
 from service.store import repo  # noqa: E402
-from service.store.tables import Base, ModelRow, SnapshotRow  # noqa: E402
+from service.store.tables import Base  # noqa: E402
 
 MODEL = "bench"
 START = datetime(2026, 11, 1, tzinfo=UTC)
@@ -85,7 +84,10 @@ ERROR_SD = 0.6  # the model's error on a row, fixed across snapshots
 FAULT_SIZES: dict[str, tuple[tuple[float, float], str]] = {
     "calibration": ((0.4, 0.1), "logit offset added to every score"),
     "dead-feature": ((0.03, 0.005), "AUC lost (a feature's contribution removed)"),
-    "segment-regression": ((0.5, 0.05), "AUC lost in the 5 % device=tablet segment (0.5: at random)"),
+    "segment-regression": (
+        (0.5, 0.05),
+        "AUC lost in the 5 % device=tablet segment (0.5: at random)",
+    ),
     "collapse": ((1e-4, 0.15), "score std: absolute 1e-4 / share of normal std"),
     "nan-burst": ((0.01, 0.0005), "share of NaN scores"),
     "label-leak": ((0.10, 0.02), "AUC gained by leaking the label into the score"),
@@ -156,7 +158,9 @@ class World:
         popularity = 1.0 / np.arange(1, CATALOG + 1) ** 0.9  # Zipf-like catalog
         items = np.concatenate(
             [
-                rng.choice(CATALOG, ITEMS_PER_READER, replace=False, p=popularity / popularity.sum())
+                rng.choice(
+                    CATALOG, ITEMS_PER_READER, replace=False, p=popularity / popularity.sum()
+                )
                 for _ in range(readers)
             ]
         )
@@ -224,7 +228,8 @@ class World:
         return State(
             scale=PHI * state.scale + rng.normal(0.0, SCALE_SD),
             offset=PHI * state.offset + rng.normal(0.0, OFFSET_SD),
-            noise=NOISE_RHO * noise + math.sqrt(1 - NOISE_RHO**2) * rng.normal(0.0, NOISE_SD, self.n),
+            noise=NOISE_RHO * noise
+            + math.sqrt(1 - NOISE_RHO**2) * rng.normal(0.0, NOISE_SD, self.n),
         )
 
     def ranks(self, score: np.ndarray) -> np.ndarray:
@@ -288,14 +293,14 @@ class Faults:
                     lambda s: seg_auc - auc_for(healthy + s * noise, world.tablet), loss, 0.0, 50.0
                 )
         self.leak: dict[float, float] = {}
+        leak_labels = labels[: world.n]
+        healthy_auc = auc_of(healthy, leak_labels)
+
+        def leak_gain(g: float) -> float:
+            return auc_of(healthy + g * leak_labels, leak_labels) - healthy_auc
+
         for gain in FAULT_SIZES["label-leak"][0]:
-            leak_labels = labels[: world.n]
-            self.leak[gain] = _bisect(
-                lambda g: auc_of(healthy + g * leak_labels, leak_labels) - auc_of(healthy, leak_labels),
-                gain,
-                0.0,
-                10.0,
-            )
+            self.leak[gain] = _bisect(leak_gain, gain, 0.0, 10.0)
         self.segment_auc = seg_auc
 
 

@@ -56,8 +56,8 @@ class SampleRules(BaseModel):
     min_std: float = Field(
         1e-3,
         ge=0.0,
-        description="A score standard deviation at or below this is collapsed output "
-        "(absolute floor; the only collapse rule for a model's first snapshot).",
+        description="A score standard deviation at or below this is collapsed output when "
+        "there is no baseline spread to compare with (a model's first snapshot).",
     )
     min_std_ratio: float = Field(
         0.2,

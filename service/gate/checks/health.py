@@ -5,10 +5,11 @@ many rows sharing one value) and too few rows.
 
 Collapse is judged against the baseline's spread when there is a baseline: a score standard
 deviation at or below ``min_std_ratio`` of the baseline's (its sample, or the stored summary once
-the sample is pruned) is collapsed, whatever the scale of the scores; an absolute floor
-``min_std`` applies always and is the only rule for a model's first snapshot. An absolute floor
-alone cannot know the scale: 1e-4 is collapsed for probabilities spread over 0.15 but normal for
-a model whose scores are all near 1e-3 (common practice, no source).
+the sample is pruned) is collapsed, whatever the scale of the scores. The absolute floor
+``min_std`` applies when there is no baseline spread to compare with (the model's first
+snapshot, or a baseline without finite scores). An absolute floor alone
+cannot know the scale: 1e-4 is collapsed for probabilities spread over 0.15 but normal for a
+model whose scores all lie near 1e-3 (common practice, no source).
 """
 
 from __future__ import annotations
@@ -51,14 +52,14 @@ def _spread(snapshot: Snapshot | None) -> float | None:
 
 def _collapse(rules: SampleRules, std: float, baseline: Snapshot | None) -> Finding:
     base_std = _spread(baseline) if rules.min_std_ratio > 0 else None
-    if base_std is not None and base_std > rules.min_std:
+    if base_std is not None and base_std > 0.0:
         limit = rules.min_std_ratio * base_std
         ratio = std / base_std
-        bad = std <= limit or std <= rules.min_std
+        bad = std <= limit
         message = (
             f"output collapsed: score standard deviation {std:.3g} is {ratio:.3g} of the "
             f"baseline's {base_std:.3g}; at or below {rules.min_std_ratio:g} of the baseline's "
-            f"(or {rules.min_std:g} absolute) is collapsed"
+            "is collapsed"
             if bad
             else f"score standard deviation {std:.4g}, {ratio:.3g} of the baseline's {base_std:.4g}"
         )
@@ -67,7 +68,7 @@ def _collapse(rules: SampleRules, std: float, baseline: Snapshot | None) -> Find
             bad,
             message,
             value=std,
-            limit=max(limit, rules.min_std),
+            limit=limit,
             baseline_value=base_std,
             candidate_value=std,
         )
