@@ -427,7 +427,7 @@ class Stream:
         self.policy = dataclasses.replace(policy, models=(MODEL,))
         self.world = World(size.readers, seed)
         self.faults = Faults(self.world, seed)
-        engine = create_engine(f"sqlite:///{folder / (policy.name + '.db')}")
+        engine = create_engine(f"sqlite:///{folder / (policy.name.replace('/', '-') + '.db')}")
         Base.metadata.create_all(engine)
         self.factory = sessionmaker(engine, expire_on_commit=False)
         self.states: dict[str, tuple[State, datetime]] = {}
