@@ -19,10 +19,17 @@ from typing import Any, Literal
 
 import numpy as np
 
-Outcome = Literal["ok", "breach", "advisory", "inconclusive", "skipped"]
+Outcome = Literal["ok", "breach", "advisory", "inconclusive", "underpowered", "skipped"]
 Decision = Literal["promote", "hold"]
 
-OUTCOMES: tuple[Outcome, ...] = ("ok", "breach", "advisory", "inconclusive", "skipped")
+OUTCOMES: tuple[Outcome, ...] = (
+    "ok",
+    "breach",
+    "advisory",
+    "inconclusive",
+    "underpowered",
+    "skipped",
+)
 DECISIONS: tuple[Decision, ...] = ("promote", "hold")
 
 #: Columns with a fixed meaning; any other column must be named ``segment.<name>``.

@@ -17,6 +17,7 @@ from sqlalchemy.dialects.postgresql import insert as pg_insert
 from sqlalchemy.dialects.sqlite import insert as sqlite_insert
 from sqlalchemy.orm import Session
 
+from service.gate.history import history_values
 from service.gate.policy import Policy
 from service.gate.types import HistoryEntry, Sample, SampleSummary, Snapshot, Verdict
 from service.store import codec
@@ -501,11 +502,7 @@ def history(
     entries = []
     for verdict, snap in rows:
         effective = effective_decision(verdict, overrides[verdict.id])
-        values = {
-            f["check"]: float(f["value"])
-            for f in verdict.findings
-            if isinstance(f, dict) and f.get("value") is not None
-        }
+        values = history_values(verdict.findings)
         healthy = (
             effective == "promote" and snap.id in state.ever and snap.id not in state.rolled_back
         )

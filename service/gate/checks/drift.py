@@ -22,6 +22,7 @@ from typing import Any, Literal
 import numpy as np
 from pydantic import Field, field_validator
 
+from service.gate.adaptive import Transform
 from service.gate.checks.base import CheckContext, format_p, register, skipped
 from service.gate.checks.segments import ALL, CorrectedSegmentKeys, Unit, matching_rows, split
 from service.gate.types import Finding, Sample
@@ -60,6 +61,10 @@ class DriftConfig(CorrectedSegmentKeys):
             raise ValueError("set max (effect size), alpha (significance), or both")
         if self.alpha is not None and not DRIFT_STATISTICS[self.statistic].has_pvalue:
             raise ValueError(f"statistic {self.statistic!r} has no p-value: use max, not alpha")
+
+    def natural_transform(self) -> Transform:
+        """Every drift statistic is non-negative and right-skewed: learn on the logarithm."""
+        return "log"
 
 
 @dataclass(frozen=True)

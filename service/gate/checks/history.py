@@ -64,6 +64,9 @@ class TrainingVolumeConfig(CheckConfig):
         if self.adaptive is not None:
             raise ValueError("training-volume learns from history already; drop 'adaptive'")
 
+    def learning(self) -> Literal["value", "own", "none"]:
+        return "own"
+
 
 @register("training-volume", TrainingVolumeConfig, family="history", needs_other=False)
 def run_training_volume(config: TrainingVolumeConfig, ctx: CheckContext) -> list[Finding]:
@@ -158,6 +161,9 @@ class BaselineAgeConfig(CheckConfig):
             raise ValueError("baseline-age measures the baseline, not the reference")
         if self.adaptive is not None:
             raise ValueError("baseline-age has a fixed max_age_hours; drop 'adaptive'")
+
+    def learning(self) -> Literal["value", "own", "none"]:
+        return "none"
 
 
 @register("baseline-age", BaselineAgeConfig, family="history")

@@ -28,6 +28,7 @@ candidate's own value on all rows.
 
 from __future__ import annotations
 
+import dataclasses
 import zlib
 from dataclasses import dataclass
 from typing import Any, Literal
@@ -35,6 +36,7 @@ from typing import Any, Literal
 import numpy as np
 from pydantic import Field
 
+from service.gate.adaptive import LearnPlan
 from service.gate.checks.base import CheckContext, register, skipped
 from service.gate.checks.comparisons import (
     DIRECTION,
@@ -47,6 +49,13 @@ from service.gate.checks.comparisons import (
     is_ranking,
     label_of,
     value_of,
+)
+from service.gate.checks.margins import (
+    GAIN_KEY,
+    UnitMargin,
+    leak_limit,
+    too_few_classes,
+    unit_margin,
 )
 from service.gate.checks.memo import codes_of, finite_rows, order_of, take
 from service.gate.checks.segments import (
@@ -63,6 +72,7 @@ from service.stats.auc import AUCChange, delong_paired, has_ties
 from service.stats.delong_segments import delong_paired_by_value
 from service.stats.inference import (
     BoundaryTest,
+    ChangeTest,
     against_boundary,
     minimum_detectable_effect,
     normal_change,
@@ -108,6 +118,15 @@ class QualityConfig(CorrectedSegmentKeys):
         "auto", description="auto: closed-form tests where they exist; bootstrap: always resample."
     )
     resamples: int = Field(1000, ge=10, le=100_000, description="Bootstrap resamples.")
+    min_positives: int = Field(
+        50,
+        ge=1,
+        description="auc, calibration_ratio, ece: a unit with fewer positive rows is "
+        "underpowered (DeLong's interval is overconfident with few positives).",
+    )
+    min_negatives: int = Field(
+        50, ge=1, description="auc, calibration_ratio, ece: the same for negative rows."
+    )
 
     def consistency(self) -> None:
         super().consistency()
@@ -115,11 +134,14 @@ class QualityConfig(CorrectedSegmentKeys):
             raise ValueError(f"rule {self.rule!r} needs a margin")
         if self.pairing == "paired" and self.against != "baseline":
             raise ValueError("pairing = 'paired' compares with the baseline (against = 'baseline')")
-        if self.adaptive is not None:
-            raise ValueError(
-                "quality decides on a confidence interval against its margin, not on a limit "
-                "learned from history; drop 'adaptive'"
-            )
+
+    def learning(self) -> Literal["value", "own", "none"]:
+        """Learns per unit inside its run (see :mod:`service.gate.checks.margins`)."""
+        return "own"
+
+    def bad_side(self) -> Literal["upper", "lower"]:
+        """The learned quantity is the oriented gain: bad when low."""
+        return "lower"
 
 
 @dataclass(frozen=True)
@@ -129,10 +151,13 @@ class UnitResult:
     comparison: Comparison | None
     tests: BoundaryTest | None
     error: str | None = None
+    #: Too few positives or negatives: reported as underpowered, not tested.
+    short: bool = False
 
 
-def _boundary(config: QualityConfig) -> float:
-    margin = config.margin or 0.0
+def _boundary(config: QualityConfig, margin: float | None = None) -> float:
+    """The boundary of the gain: ``-margin`` (non-inferiority, limit) or ``+margin``."""
+    margin = (config.margin or 0.0) if margin is None else margin
     return margin if config.rule == "superiority" else -margin
 
 
@@ -242,6 +267,18 @@ def run_quality(config: QualityConfig, ctx: CheckContext) -> list[Finding]:
     results: list[UnitResult] = []
     for unit in layout.units:
         rows = rows_used if unit.rows is None else unit.rows.size
+        labels = cand_all.label if unit.rows is None else cand_all.label[unit.rows]
+        short = too_few_classes(
+            config.metric,
+            labels,
+            min_positives=config.min_positives,
+            min_negatives=config.min_negatives,
+        )
+        if short is not None:
+            if unit.label == ALL:
+                return [_underpowered_all(config, name, paired, short, rows_used)]
+            results.append(UnitResult(unit, rows, None, None, error=short, short=True))
+            continue
         try:
             if unit.label in fast:
                 known = fast[unit.label]
@@ -263,21 +300,80 @@ def run_quality(config: QualityConfig, ctx: CheckContext) -> list[Finding]:
                 raise
             results.append(UnitResult(unit, rows, None, None, error=str(exc)))
             continue
-        sign = DIRECTION[config.metric]
-        tests = against_boundary(comparison.test, _boundary(config), sign=sign)
-        results.append(UnitResult(unit, rows, comparison, tests))
+        results.append(UnitResult(unit, rows, comparison, None))
+    plan = ctx.policy.learn_plan(config)
+    ran = [r for r in results if r.comparison is not None]
+    # The check's share of the budget is split over its units (and the leak guard): Bonferroni.
+    guards = 1 if plan is not None or config.max_gain is not None else 0
+    unit_plan = None if plan is None else plan.at_level(_unit_level(plan, len(ran) + guards))
+    margins = {
+        r.unit.label: unit_margin(
+            check=config.name,
+            unit=r.unit.label,
+            rule=config.rule,
+            stated=config.margin or 0.0,
+            plan=unit_plan,
+            history=ctx.history,
+            now=ctx.now,
+        )
+        for r in ran
+    }
+    leak = leak_limit(
+        check=config.name,
+        stated=config.max_gain,
+        plan=unit_plan,
+        history=ctx.history,
+        now=ctx.now,
+    )
+    sign = DIRECTION[config.metric]
+    tested = [
+        dataclasses.replace(
+            r,
+            tests=against_boundary(
+                r.comparison.test,
+                _boundary(config, margins[r.unit.label].margin),
+                sign=sign,
+            ),
+        )
+        if r.comparison is not None
+        else r
+        for r in results
+    ]
     return [
         _finding(
             config,
             name,
             paired,
-            results,
+            tested,
             layout.too_small,
             layout.missing_columns,
             rows_used,
             len(sample),
+            margins,
+            leak,
         )
     ]
+
+
+def _unit_level(plan: LearnPlan, units: int) -> float:
+    assert plan.level is not None or plan.method != "budget"
+    return (plan.level or 0.0) / max(1, units) if plan.level is not None else 0.0
+
+
+def _underpowered_all(
+    config: QualityConfig, name: str, paired: bool, why: str, rows: int
+) -> Finding:
+    """All rows have too few positives or negatives: underpowered, with the counts."""
+    return Finding(
+        check=config.name,
+        kind=config.kind,
+        outcome="underpowered",
+        statistic=f"{config.metric} change",
+        message=f"{name} on all {rows} rows ({'paired' if paired else 'unpaired'}): {why}",
+        blocking=config.blocking,
+        against=config.against,
+        details={"rule": config.rule, "margin": config.margin, "rows_used": rows},
+    )
 
 
 def _paired_auc_units(
@@ -365,16 +461,31 @@ def _bounds(config: QualityConfig, name: str, value: float) -> list[str]:
     return problems
 
 
-def _outcome(config: QualityConfig, gain: float, p_above: float, p_below: float) -> str:
+def _outcome(
+    config: QualityConfig,
+    test: ChangeTest,
+    gain: float,
+    p_above: float,
+    p_below: float,
+    margin: float,
+    leak: float | None,
+) -> str:
+    """One unit's verdict: leak, breach, ok, inconclusive or underpowered (module docstring
+    of :mod:`service.gate.checks.margins`)."""
     alpha = (1.0 - config.confidence) / 2.0
-    if config.max_gain is not None and gain > config.max_gain:
+    if leak is not None and gain > leak:
         return "leak"
     if config.rule == "limit":
-        return "breach" if gain < _boundary(config) else "ok"
+        return "breach" if gain < _boundary(config, margin) else "ok"
+    if test.se == 0:
+        return "zero-se"  # no measured uncertainty is not certainty
     if p_above < alpha:
         return "ok"
     if p_below < alpha:
         return "breach"
+    mde = minimum_detectable_effect(test.se, confidence=config.confidence, power=config.power)
+    if config.rule == "non-inferiority" and mde > margin:
+        return "underpowered"
     return "inconclusive"
 
 
@@ -387,6 +498,8 @@ def _finding(
     missing: list[str],
     rows_used: int,
     rows_total: int,
+    margins: dict[str, UnitMargin],
+    leak: tuple[float | None, str, dict[str, Any]],
 ) -> Finding:
     sign = DIRECTION[config.metric]
     ran = [r for r in results if r.comparison is not None and r.tests is not None]
@@ -395,15 +508,22 @@ def _finding(
     # (Berger 1982), so the raw p-values decide it.
     p_above = [r.tests.p_above for r in ran]  # type: ignore[union-attr]
     p_below = adjust([r.tests.p_below for r in ran], config.correction)  # type: ignore[union-attr]
+    leak_at, leak_why, leak_evidence = leak
     table: list[dict[str, Any]] = []
     verdicts: dict[str, str] = {}
+    learn: dict[str, float] = {}
     for r, pa, pb in zip(ran, p_above, p_below, strict=True):
         assert r.comparison is not None and r.tests is not None
         c = r.comparison
         low, high = oriented_interval(c.test, sign)
         gain = sign * c.test.estimate
-        verdict = _outcome(config, gain, float(pa), float(pb))
+        margin = margins[r.unit.label]
+        guard = leak_at if r.unit.label == ALL else None
+        verdict = _outcome(config, c.test, gain, float(pa), float(pb), margin.margin, guard)
         verdicts[r.unit.label] = verdict
+        learn[r.unit.label] = low if config.rule == "non-inferiority" else gain
+        if r.unit.label == ALL:
+            learn[GAIN_KEY] = gain
         table.append(
             {
                 "segment": r.unit.label,
@@ -418,25 +538,35 @@ def _finding(
                 "p_worse": r.tests.p_below,
                 "p_worse_adjusted": float(pb),
                 "gain_interval": [low, high],
-                "outcome": verdict if verdict != "leak" else "breach",
+                "mde": minimum_detectable_effect(
+                    c.test.se, confidence=config.confidence, power=config.power
+                ),
+                "margin": margin.margin,
+                "margin_source": margin.source,
+                "outcome": _shown(verdict),
             }
         )
     for r in results:
         if r.comparison is None:
             table.append(
-                {"segment": r.unit.label, "rows": r.rows, "outcome": "skipped", "error": r.error}
+                {
+                    "segment": r.unit.label,
+                    "rows": r.rows,
+                    "outcome": "underpowered" if r.short else "skipped",
+                    "error": r.error,
+                }
             )
+            if r.short:
+                verdicts[r.unit.label] = "underpowered"
     whole = ran[0]
     assert whole.unit.label == ALL and whole.comparison is not None and whole.tests is not None
     test = whole.comparison.test
     gain = sign * test.estimate
     mde = minimum_detectable_effect(test.se, confidence=config.confidence, power=config.power)
-    boundary = _boundary(config)
-    limit = sign * boundary  # the boundary in the metric's own units
+    used = margins[ALL]
+    limit = sign * _boundary(config, used.margin)  # the boundary in the metric's own units
     problems = _bounds(config, name, whole.comparison.candidate_value)
-    leaks = [label for label, v in verdicts.items() if v == "leak"]
-    breaches = [label for label, v in verdicts.items() if v == "breach"]
-    unsure = [label for label, v in verdicts.items() if v == "inconclusive"]
+    by = {kind: [lab for lab, v in verdicts.items() if v == kind] for kind in _VERDICTS}
     conf = f"{config.confidence:.0%}"
     low, high = test.interval
     what = "change" if config.metric != "calibration_ratio" else "change in distance from 1"
@@ -446,27 +576,47 @@ def _finding(
         f"{test.n_candidate} {whole.comparison.units}): {what} {_fmt(test.estimate)}, "
         f"{conf} CI [{_fmt(low)}, {_fmt(high)}]"
     )
-    if leaks:
+    margin_text = _margin_text(used)
+    if by["leak"]:
         outcome = "breach"
-        tail = f"gain above max_gain {config.max_gain:g}{where(leaks)}: a label may have leaked"
-    elif problems or breaches:
+        tail = f"gain above the leak limit {leak_at:.4g} ({leak_why}): a label may have leaked"
+    elif problems or by["breach"]:
         outcome = "breach"
         parts = list(problems)
-        if breaches:
-            parts.append(_breach_text(config, breaches))
+        if by["breach"]:
+            parts.append(_breach_text(config, by["breach"], margin_text))
         tail = "; ".join(parts)
-    elif unsure:
+    elif by["zero-se"] or by["inconclusive"]:
         outcome = "inconclusive"
+        parts = []
+        if by["zero-se"]:
+            parts.append(
+                f"standard error 0{where(by['zero-se'])}: the data cannot measure its "
+                "uncertainty, which is not certainty"
+            )
+        if by["inconclusive"]:
+            parts.append(
+                f"cannot tell against the {margin_text}{where(by['inconclusive'])}: the "
+                f"interval straddles it (detectable change at this size: {mde:.3g})"
+            )
+        tail = "; ".join(parts)
+    elif by["underpowered"]:
+        outcome = "underpowered"
         tail = (
-            f"cannot tell against the margin {config.margin or 0:g}{where(unsure)}: the "
-            f"interval straddles it (detectable change at this size: {mde:.3g})"
+            f"underpowered{where(by['underpowered'])}: too small to decide against the "
+            f"{margin_text} (detectable change on all rows: {mde:.3g}); see details.segments"
         )
     else:
         outcome = "ok"
-        tail = _ok_text(config)
+        tail = _ok_text(config, margin_text)
     details: dict[str, Any] = {
         "rule": config.rule,
         "margin": config.margin,
+        "margin_used": used.margin,
+        "margin_source": used.source,
+        "margin_why": used.description,
+        "learned_change": used.learned,
+        "learning": used.evidence,
         "confidence": config.confidence,
         "method": test.method,
         "mode": "paired" if paired else "unpaired",
@@ -481,9 +631,10 @@ def _finding(
         "segments": table if len(results) > 1 or too_small else [],
         "too_small": too_small,
         "missing_segment_columns": missing,
+        "learn": learn,
     }
-    if config.max_gain is not None:
-        details["max_gain"] = config.max_gain
+    if leak_at is not None:
+        details.update({"max_gain": leak_at, "leak_why": leak_why, "leak_learning": leak_evidence})
     return Finding(
         check=config.name,
         kind=config.kind,
@@ -502,21 +653,34 @@ def _finding(
     )
 
 
-def _breach_text(config: QualityConfig, units: list[str]) -> str:
+_VERDICTS = ("leak", "breach", "zero-se", "inconclusive", "underpowered", "ok")
+
+
+def _shown(verdict: str) -> str:
+    return {"leak": "breach", "zero-se": "inconclusive"}.get(verdict, verdict)
+
+
+def _margin_text(margin: UnitMargin) -> str:
+    if margin.source == "learned":
+        return f"learned margin {margin.margin:.4g} (stated {margin.stated:g})"
+    return f"margin {margin.margin:g}"
+
+
+def _breach_text(config: QualityConfig, units: list[str], margin: str) -> str:
     place = where(units)
     if config.rule == "non-inferiority":
-        return f"worse than the {config.against} by more than the margin {config.margin:g}{place}"
+        return f"worse than the {config.against} by more than the {margin}{place}"
     if config.rule == "superiority":
         return f"shown not better than the {config.against} by {config.margin or 0:g}{place}"
-    return f"point estimate worse than the {config.against} by more than {config.margin:g}{place}"
+    return f"point estimate worse than the {config.against} by more than the {margin}{place}"
 
 
-def _ok_text(config: QualityConfig) -> str:
+def _ok_text(config: QualityConfig, margin: str) -> str:
     if config.rule == "non-inferiority":
-        return f"non-inferior within the margin {config.margin:g}"
+        return f"non-inferior within the {margin}"
     if config.rule == "superiority":
         return f"better than the {config.against} by more than {config.margin or 0:g}"
-    return f"within the limit {config.margin:g}"
+    return f"within the limit: {margin}"
 
 
 def _null_text(config: QualityConfig) -> str:
