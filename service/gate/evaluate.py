@@ -153,7 +153,7 @@ def evaluate(inp: GateInput, policy: Policy | None) -> Verdict:
             error=message,
         )
     findings: list[Finding] = []
-    findings.extend(health_findings(policy.sample, inp.candidate))
+    findings.extend(health_findings(policy.sample, inp.candidate, inp.baseline))
     findings.extend(lineage_findings(policy.lineage, inp))
     for config in policy.checks:
         findings.extend(_run_check(config, inp, policy))

@@ -55,7 +55,17 @@ class SampleRules(BaseModel):
         0.0, ge=0.0, le=1.0, description="Largest allowed share of scores outside the range."
     )
     min_std: float = Field(
-        1e-6, ge=0.0, description="A score standard deviation at or below this is collapsed output."
+        1e-3,
+        ge=0.0,
+        description="A score standard deviation at or below this is collapsed output when "
+        "there is no baseline spread to compare with (a model's first snapshot).",
+    )
+    min_std_ratio: float = Field(
+        0.2,
+        ge=0.0,
+        lt=1.0,
+        description="A score standard deviation at or below this share of the baseline's is "
+        "collapsed output; 0 turns the relative rule off.",
     )
     max_mode_share: float = Field(
         0.5, gt=0.0, le=1.0, description="Largest allowed share of rows sharing one score value."

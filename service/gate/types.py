@@ -188,6 +188,10 @@ class GateInput:
     #: Stored snapshot keys of the model among those the gate needs (the candidate's parent),
     #: None when not loaded.
     known_keys: frozenset[str] | None = None
+    #: The newest watermark (``trained_until``) of any earlier snapshot of the model, held or
+    #: promoted, None when none had one or it was not loaded. Lineage compares with it, so a
+    #: held snapshot's watermark still bars a replayed (older) job.
+    newest_watermark: datetime | None = None
 
 
 @dataclass(frozen=True)
