@@ -485,7 +485,10 @@ def _outcome(
     if config.rule == "limit":
         return "breach" if gain < _boundary(config, margin) else "ok"
     if test.se == 0:
-        return "zero-se"  # no measured uncertainty is not certainty
+        # No change on any resample or component (the candidate scores the rows as the
+        # baseline does) is known exactly; any other change without a measured uncertainty
+        # is not certainty.
+        return _outcome_of_zero(config, gain, margin)
     if p_above < alpha:
         return "ok"
     if p_below < alpha:
@@ -658,6 +661,12 @@ def _finding(
         against=config.against,
         details=details,
     )
+
+
+def _outcome_of_zero(config: QualityConfig, gain: float, margin: float) -> str:
+    if gain == 0.0:
+        return "ok" if config.rule != "superiority" or margin == 0.0 else "breach"
+    return "zero-se"
 
 
 _VERDICTS = ("leak", "breach", "zero-se", "inconclusive", "underpowered", "ok")
