@@ -184,6 +184,8 @@ class LearnPlan:
     level: float | None = None
     shared_by: int = 1
     budget_per_1000: float | None = None
+    #: Usual push intervals between candidate and baseline (>= 1); see :func:`learn_limit`.
+    steps: float = 1.0
 
     def at_level(self, level: float) -> LearnPlan:
         """The same plan with the tail level split further (per unit of a check)."""
@@ -268,6 +270,25 @@ def _scale_side(side: Side, transform: Transform) -> Side:
 _SCALE_TEXT = {"none": "", "log": " of the logs", "log1m": " of log(1 - x)"}
 
 
+def _widen(median: float, limit: float, steps: float, transform: Transform, side: Side) -> float:
+    """A one-step limit for a candidate *steps* push intervals from its baseline.
+
+    Healthy change between snapshots accumulates like a random walk: a distance between
+    snapshots ``r`` steps apart grows as ``sqrt(r)`` and a variance-like quantity (``1 - rho``)
+    as ``r``. So on the log scale the limit moves by ``0.5 log r`` (log) or ``log r`` (log1m);
+    on the value scale its distance from the median grows by ``sqrt(r)``. A mean-reverting
+    model changes less than that, so the widening errs towards not holding healthy pushes after
+    a hold (which otherwise cascade: each held push leaves the next one further away).
+    Model assumption (Brownian scaling), no published source for its use here.
+    """
+    sign = 1.0 if side == "upper" else -1.0
+    if transform == "log":
+        return limit + sign * 0.5 * math.log(steps)
+    if transform == "log1m":
+        return limit + sign * math.log(steps)
+    return median + (limit - median) * math.sqrt(steps)
+
+
 def learn_limit(
     plan: LearnPlan | AdaptiveRules,
     *,
@@ -341,13 +362,19 @@ def learn_limit(
             evidence["warm_up"] = True
             text = f"warm-up: the {n} healthy values have no spread, so no tail can be fitted"
             return LearnedLimit(None, side, n, text, evidence)
-        limit = _back(fit.limit, transform)
+        fitted = fit.limit
+        if plan.steps > 1.0:
+            fitted = _widen(fit.median, fitted, plan.steps, transform, scale_side)
+            evidence["steps"] = plan.steps
+        limit = _back(fitted, transform)
         text = (
             f"tail 1 in {1.0 / plan.level:,.0f} of a robust fit (median {fit.median:.3g}, "
             f"{fit.source} scale {fit.scale:.3g}{_SCALE_TEXT[transform]}) of {n} healthy "
             f"promotions; the check's share of the budget of "
             f"{plan.budget_per_1000:g} per 1,000 split over {plan.shared_by}"
         )
+        if plan.steps > 1.0:
+            text += f"; widened for a candidate {plan.steps:.1f} push intervals from its baseline"
     elif plan.method == "robust-z":
         spread = robust.robust_scale(selection.values)
         sign = 1.0 if scale_side == "upper" else -1.0

@@ -73,6 +73,8 @@ def _run_check(config: CheckConfig, inp: GateInput, policy: Policy) -> list[Find
         ]
     plan = policy.learn_plan(config) if config.learning() == "value" else None
     if plan is not None:
+        if config.against == "baseline":
+            plan = dataclasses.replace(plan, steps=ctx.steps)
         alpha = getattr(config, "alpha", None)
         produced = [
             apply_adaptive(

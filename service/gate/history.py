@@ -120,6 +120,33 @@ def history_values(findings: Iterable[Mapping[str, Any]]) -> dict[str, float]:
     return values
 
 
+def steps_apart(
+    candidate_until: datetime | None,
+    baseline_until: datetime | None,
+    history: Sequence[HistoryEntry],
+) -> float:
+    """How many usual push intervals separate the candidate's watermark from the baseline's.
+
+    The usual interval is the median gap between the watermarks of consecutive earlier posts
+    (newest first in *history*, held or not). 1.0 when anything is unknown and never below 1:
+    a learned limit describes one promotion step, and after a hold the next candidate is judged
+    against an older baseline, so it is further away (see :mod:`service.gate.adaptive`).
+    """
+    if candidate_until is None or baseline_until is None:
+        return 1.0
+    marks = [e.trained_until for e in history if e.trained_until is not None]
+    gaps = [
+        (newer - older).total_seconds()
+        for newer, older in zip(marks, marks[1:], strict=False)
+        if newer > older
+    ]
+    if len(gaps) < 3:
+        return 1.0
+    usual = sorted(gaps)[len(gaps) // 2]
+    apart = (candidate_until - baseline_until).total_seconds()
+    return max(1.0, apart / usual) if usual > 0 else 1.0
+
+
 def consecutive_holds(history: Sequence[HistoryEntry]) -> int:
     """How many of the newest entries in a row ended in ``hold`` (after any override)."""
     count = 0

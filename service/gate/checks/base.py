@@ -25,6 +25,7 @@ from typing import TYPE_CHECKING, Any, Literal
 from pydantic import BaseModel, ConfigDict, Field
 
 from service.gate.adaptive import AdaptiveRules, Transform
+from service.gate.history import steps_apart
 from service.gate.types import Finding, HistoryEntry, Snapshot
 
 if TYPE_CHECKING:
@@ -107,6 +108,14 @@ class CheckContext:
     @property
     def seed(self) -> int:
         return self.policy.seed
+
+    @property
+    def steps(self) -> float:
+        """Usual push intervals between the candidate's and the baseline's watermarks (at least
+        1): a learned limit for one step widens for a candidate further away."""
+        if self.baseline is None:
+            return 1.0
+        return steps_apart(self.candidate.trained_until, self.baseline.trained_until, self.history)
 
 
 CheckFn = Callable[[Any, CheckContext], Sequence[Finding]]

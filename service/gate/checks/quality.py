@@ -308,6 +308,8 @@ def run_quality(config: QualityConfig, ctx: CheckContext) -> list[Finding]:
             continue
         results.append(UnitResult(unit, rows, comparison, None))
     plan = ctx.policy.learn_plan(config)
+    if plan is not None and config.against == "baseline":
+        plan = dataclasses.replace(plan, steps=ctx.steps)
     ran = [r for r in results if r.comparison is not None]
     # The check's share of the budget is split over its units (and the leak guard): Bonferroni.
     guards = 1 if plan is not None or config.max_gain is not None else 0
