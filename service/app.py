@@ -18,7 +18,7 @@ from service.api.routers import audit, health, models, overrides, snapshots, ver
 from service.api.routers import metrics as metrics_routes
 from service.api.routers import policies as policy_routes
 from service.api.routers import tokens as token_routes
-from service.gate.policy import Policy, load_policies
+from service.gate.policy import Policy, policies_for
 from service.metrics import Metrics
 from service.settings import Settings
 from service.store import db as store_db
@@ -56,7 +56,7 @@ def create_app(
             "OPEN mode: no API tokens are checked (demo and local development only)",
             extra=logs.fields(event="auth", auth="open"),
         )
-    loaded = list(policies) if policies is not None else load_policies(settings.policy_dir)
+    loaded = list(policies) if policies is not None else policies_for(settings.policy_dir)
     app = FastAPI(
         title="tidegate",
         version=__version__,

@@ -345,6 +345,11 @@ def starter_policy() -> Policy:
     return parse_policy(text, name=STARTER_NAME, path="(packaged) service/gate/starter.toml")
 
 
+def policies_for(folder: Path | None) -> list[Policy]:
+    """The policies of *folder*, or the :func:`starter_policy` alone when no folder is set."""
+    return [starter_policy()] if folder is None else load_policies(folder)
+
+
 def select_policy(policies: Iterable[Policy], model: str) -> Policy | None:
     """The policy for *model* by the matching rule in the module docstring, or None."""
     best: tuple[tuple[int, int], int, Policy] | None = None

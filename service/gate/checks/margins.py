@@ -59,7 +59,7 @@ class UnitMargin:
     margin: float
     stated: float
     learned: float | None
-    source: Literal["stated", "learned"]
+    source: Literal["stated", "learned", "warm-up"]
     description: str
     evidence: dict[str, Any]
 
@@ -83,8 +83,10 @@ def unit_margin(
     plan: LearnPlan | None,
     history: Sequence[HistoryEntry],
     now: datetime,
+    warm_up: float | None = None,
 ) -> UnitMargin:
-    """The effective margin of one unit (module docstring)."""
+    """The effective margin of one unit (module docstring); *warm_up* (the check's
+    ``warm_up_margin``) replaces the stated margin while the unit is still learning."""
     if plan is None or rule == "superiority":
         why = (
             "stated margin (superiority requires a gain; it learns nothing)"
@@ -95,6 +97,15 @@ def unit_margin(
     lower = dataclasses.replace(plan, side="lower", transform="none")
     learned = learn_limit(lower, check=learn_key(check, unit), history=history, now=now)
     if learned.limit is None:
+        if warm_up is not None:
+            return UnitMargin(
+                warm_up,
+                stated,
+                None,
+                "warm-up",
+                f"warm-up margin {warm_up:g} ({learned.description})",
+                learned.evidence,
+            )
         return UnitMargin(
             stated,
             stated,

@@ -118,6 +118,12 @@ class QualityConfig(CorrectedSegmentKeys):
         "auto", description="auto: closed-form tests where they exist; bootstrap: always resample."
     )
     resamples: int = Field(1000, ge=10, le=100_000, description="Bootstrap resamples.")
+    warm_up_margin: float | None = Field(
+        None,
+        ge=0,
+        description="The margin while the check is still learning (fewer healthy values than "
+        "the budget's min_history); default: margin.",
+    )
     min_positives: int = Field(
         50,
         ge=1,
@@ -315,6 +321,7 @@ def run_quality(config: QualityConfig, ctx: CheckContext) -> list[Finding]:
             plan=unit_plan,
             history=ctx.history,
             now=ctx.now,
+            warm_up=config.warm_up_margin,
         )
         for r in ran
     }
@@ -478,7 +485,10 @@ def _outcome(
     if config.rule == "limit":
         return "breach" if gain < _boundary(config, margin) else "ok"
     if test.se == 0:
-        return "zero-se"  # no measured uncertainty is not certainty
+        # No change on any resample or component (the candidate scores the rows as the
+        # baseline does) is known exactly; any other change without a measured uncertainty
+        # is not certainty.
+        return _outcome_of_zero(config, gain, margin)
     if p_above < alpha:
         return "ok"
     if p_below < alpha:
@@ -653,6 +663,12 @@ def _finding(
     )
 
 
+def _outcome_of_zero(config: QualityConfig, gain: float, margin: float) -> str:
+    if gain == 0.0:
+        return "ok" if config.rule != "superiority" or margin == 0.0 else "breach"
+    return "zero-se"
+
+
 _VERDICTS = ("leak", "breach", "zero-se", "inconclusive", "underpowered", "ok")
 
 
@@ -663,6 +679,8 @@ def _shown(verdict: str) -> str:
 def _margin_text(margin: UnitMargin) -> str:
     if margin.source == "learned":
         return f"learned margin {margin.margin:.4g} (stated {margin.stated:g})"
+    if margin.source == "warm-up":
+        return f"warm-up margin {margin.margin:g} (still learning)"
     return f"margin {margin.margin:g}"
 
 
