@@ -409,6 +409,7 @@ class CreepResult:
     held_step: int | None
     bound_step: int
     steps_run: int
+    problem: str = ""
 
 
 @dataclass
@@ -659,6 +660,19 @@ class Stream:
         # The smallest single-push change held, on a grid of x1.25 steps (side posts).
         single: float | None = None
         amount = 0.01
+        # Control: the same side post without the change must pass, else nothing is measured.
+        control = make_post(
+            self.world,
+            self.faults,
+            key=f"g{self.count:05d}-{kind}-control",
+            state=state,
+            at=at + timedelta(minutes=5),
+            baseline=self.states.get(self.baseline_key() or ""),
+        )
+        control.kind, control.size = f"grid-{kind}", "control"
+        if self.side_post(control).decision == "hold":
+            self.result.creeps.append(CreepResult(kind, None, None, 0, 0, "control held"))
+            return state, at
         while amount < 3.0:
             base = self.baseline_key()
             post = make_post(
@@ -789,6 +803,18 @@ def summarise(result: PolicyResult) -> Summary:
     )
 
 
+def longest_run(result: PolicyResult) -> int:
+    """The most counted healthy pushes held in a row (a hold makes the next candidate two
+    pushes away from the baseline, so holds can cascade)."""
+    best = run = 0
+    for j in result.judged:
+        if j.kind != "healthy" or not j.counted:
+            continue
+        run = run + 1 if j.decision == "hold" else 0
+        best = max(best, run)
+    return best
+
+
 def goals(s: Summary) -> dict[str, bool]:
     blatant = [v for (_, w), v in s.detection.items() if w == "blatant"]
     near = [v for (_, w), v in s.detection.items() if w == "near-floor"]
@@ -840,6 +866,7 @@ def report(results: list[PolicyResult], size: Size, seed: int, wall: float) -> s
             f"{s.per_1000:.1f} per 1,000 (95 % Clopper-Pearson {s.interval[0]:.1f} to "
             f"{s.interval[1]:.1f})"
         )
+        out(f"  longest run of healthy pushes held in a row: {longest_run(result)}")
         if s.false_hold_checks:
             top = ", ".join(f"{c} x{n}" for c, n in s.false_hold_checks.most_common(6))
             out(f"  held by: {top}")
@@ -854,7 +881,12 @@ def report(results: list[PolicyResult], size: Size, seed: int, wall: float) -> s
             cells.append(", ".join(c for c, _ in by.most_common(3)) or "-")
             out(f"| {kind} | " + " | ".join(cells) + " |")
         for c in s.creeps:
-            if c.single_push is None:
+            if c.problem:
+                out(
+                    f"creep {c.kind}: not measured: the control (no change) was held, the "
+                    "stream is stuck"
+                )
+            elif c.single_push is None:
                 out(f"creep {c.kind}: no single-push change on the grid (up to 3) was held")
             else:
                 held = f"held at step {c.held_step}" if c.held_step else "never held"
