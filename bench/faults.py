@@ -116,7 +116,7 @@ class Size:
         return self.readers * ITEMS_PER_READER
 
 
-FULL = Size(readers=400, warmup=100, healthy=1000, trials=8, between_creeps=30)
+FULL = Size(readers=200, warmup=100, healthy=1000, trials=8, between_creeps=30)
 QUICK = Size(
     readers=100, warmup=25, healthy=40, trials=1, between_creeps=0, creeps=("calibration",)
 )
