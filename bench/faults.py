@@ -109,14 +109,17 @@ class Size:
     healthy: int
     trials: int
     between_creeps: int
+    creeps: tuple[str, ...] = CREEP_KINDS
 
     @property
     def rows(self) -> int:
         return self.readers * ITEMS_PER_READER
 
 
-FULL = Size(readers=400, warmup=100, healthy=1000, trials=8, between_creeps=30)
-QUICK = Size(readers=110, warmup=30, healthy=60, trials=1, between_creeps=26)
+FULL = Size(readers=200, warmup=100, healthy=1000, trials=8, between_creeps=30)
+QUICK = Size(
+    readers=100, warmup=25, healthy=40, trials=1, between_creeps=0, creeps=("calibration",)
+)
 
 
 def sigmoid(x: np.ndarray) -> np.ndarray:
@@ -406,6 +409,7 @@ class CreepResult:
     held_step: int | None
     bound_step: int
     steps_run: int
+    problem: str = ""
 
 
 @dataclass
@@ -613,8 +617,8 @@ class Stream:
                 self.fault(nxt_state, at, kind, which)
             state, at = nxt_state, nxt_at
         if creep:
-            for kind in CREEP_KINDS:
-                state, at = self._creep(kind, state, at, size)
+            for n, kind in enumerate(size.creeps):
+                state, at = self._creep(kind, state, at, size, settle=n > 0)
         self.result.wall_seconds = time.perf_counter() - started
         return self.result
 
@@ -627,7 +631,9 @@ class Stream:
         ra, rb = w.ranks(a) <= 10, w.ranks(b) <= 10
         self.result.turnover = float(1 - (ra & rb).sum() / ra.sum())
 
-    def _creep(self, kind: str, state: State, at: datetime, size: Size) -> tuple[State, datetime]:
+    def _creep(
+        self, kind: str, state: State, at: datetime, size: Size, *, settle: bool
+    ) -> tuple[State, datetime]:
         def changed(s: State, amount: float) -> State:
             if kind == "calibration":
                 return dataclasses.replace(s, offset=s.offset + amount)
@@ -646,13 +652,27 @@ class Stream:
             post.kind, post.size = f"creep-{kind}", label
             return self.post(post)
 
-        # Healthy pushes first: the creep starts from a settled, learned state.
-        for _ in range(size.between_creeps):
+        # After an earlier creep (rolled back), healthy pushes first, so that the reference
+        # moves past the creep's snapshots.
+        for _ in range(size.between_creeps if settle else 0):
             self.healthy(state, at, counted=False)
             state, at = self.world.step(state), at + STEP
         # The smallest single-push change held, on a grid of x1.25 steps (side posts).
         single: float | None = None
         amount = 0.01
+        # Control: the same side post without the change must pass, else nothing is measured.
+        control = make_post(
+            self.world,
+            self.faults,
+            key=f"g{self.count:05d}-{kind}-control",
+            state=state,
+            at=at + timedelta(minutes=5),
+            baseline=self.states.get(self.baseline_key() or ""),
+        )
+        control.kind, control.size = f"grid-{kind}", "control"
+        if self.side_post(control).decision == "hold":
+            self.result.creeps.append(CreepResult(kind, None, None, 0, 0, "control held"))
+            return state, at
         while amount < 3.0:
             base = self.baseline_key()
             post = make_post(
@@ -673,7 +693,7 @@ class Stream:
         if single is not None:
             delta = single / CREEP_STEPS
             before = self.baseline_key()
-            for step in range(1, 3 * bound + 1):
+            for step in range(1, 2 * bound + 1):
                 state, at = self.world.step(state), at + STEP
                 judged = one(state, at, step * delta, str(step))
                 self.states[judged.key] = (changed(state, step * delta), at)
@@ -783,6 +803,18 @@ def summarise(result: PolicyResult) -> Summary:
     )
 
 
+def longest_run(result: PolicyResult) -> int:
+    """The most counted healthy pushes held in a row (a hold makes the next candidate two
+    pushes away from the baseline, so holds can cascade)."""
+    best = run = 0
+    for j in result.judged:
+        if j.kind != "healthy" or not j.counted:
+            continue
+        run = run + 1 if j.decision == "hold" else 0
+        best = max(best, run)
+    return best
+
+
 def goals(s: Summary) -> dict[str, bool]:
     blatant = [v for (_, w), v in s.detection.items() if w == "blatant"]
     near = [v for (_, w), v in s.detection.items() if w == "near-floor"]
@@ -834,6 +866,7 @@ def report(results: list[PolicyResult], size: Size, seed: int, wall: float) -> s
             f"{s.per_1000:.1f} per 1,000 (95 % Clopper-Pearson {s.interval[0]:.1f} to "
             f"{s.interval[1]:.1f})"
         )
+        out(f"  longest run of healthy pushes held in a row: {longest_run(result)}")
         if s.false_hold_checks:
             top = ", ".join(f"{c} x{n}" for c, n in s.false_hold_checks.most_common(6))
             out(f"  held by: {top}")
@@ -848,7 +881,12 @@ def report(results: list[PolicyResult], size: Size, seed: int, wall: float) -> s
             cells.append(", ".join(c for c, _ in by.most_common(3)) or "-")
             out(f"| {kind} | " + " | ".join(cells) + " |")
         for c in s.creeps:
-            if c.single_push is None:
+            if c.problem:
+                out(
+                    f"creep {c.kind}: not measured: the control (no change) was held, the "
+                    "stream is stuck"
+                )
+            elif c.single_push is None:
                 out(f"creep {c.kind}: no single-push change on the grid (up to 3) was held")
             else:
                 held = f"held at step {c.held_step}" if c.held_step else "never held"
@@ -877,14 +915,18 @@ def main(argv: list[str] | None = None) -> int:
         size = dataclasses.replace(size, healthy=args.healthy)
     policies = bench_policies([p for p in args.policies.split(",") if p] or None)
     started = time.perf_counter()
-    work = [(p, size, args.seed, True) for p in policies]
-    if args.jobs > 1:
-        with multiprocessing.get_context("spawn").Pool(args.jobs) as pool:
-            results = pool.map(run_policy, work)
-    else:
-        results = [run_policy(w) for w in work]
+    results = run_all(policies, size, args.seed, jobs=args.jobs)
     print(report(results, size, args.seed, time.perf_counter() - started))
     return 0
+
+
+def run_all(policies: list[Policy], size: Size, seed: int, *, jobs: int = 1) -> list[PolicyResult]:
+    """Each policy's stream, in order (in *jobs* processes when more than one)."""
+    work = [(p, size, seed, True) for p in policies]
+    if jobs > 1:
+        with multiprocessing.get_context("spawn").Pool(jobs) as pool:
+            return pool.map(run_policy, work)
+    return [run_policy(w) for w in work]
 
 
 if __name__ == "__main__":
