@@ -52,7 +52,11 @@ def test_fresh_service_without_policy_folder_judges_with_the_starter(
         scores = np.random.default_rng(1).uniform(0.05, 0.95, 1500).round(4).tolist()
         r = client.post(
             "/v1/models/shelf-ranker/snapshots",
-            json={"key": "s1", "trained_until": "2026-12-01T02:44:00Z", "sample": {"score": scores}},
+            json={
+                "key": "s1",
+                "trained_until": "2026-12-01T02:44:00Z",
+                "sample": {"score": scores},
+            },
         )
         assert r.status_code == 201, r.text
         verdict = r.json()
