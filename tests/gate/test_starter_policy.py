@@ -99,3 +99,16 @@ def test_checks_whose_inputs_are_absent_are_skipped_with_the_reason() -> None:
     assert by_check["score-psi"].outcome == "ok"
     assert by_check["score-mean-shift"].outcome == "ok"
     assert verdict.decision == "promote"
+
+
+def test_the_folder_fallback_is_the_starter_with_a_held_first_snapshot() -> None:
+    # config/policies/default.toml is the worked fallback of the README: the starter's checks,
+    # budget and rules, except that a new model waits for a person.
+    path = Path(__file__).resolve().parents[2] / "config" / "policies" / "default.toml"
+    fallback = policies_for(path.parent)
+    default = next(p for p in fallback if p.name == "default")
+    starter = starter_policy()
+    assert default.first_snapshot == "hold" and starter.first_snapshot == "promote-if-healthy"
+    assert default.checks == starter.checks
+    assert default.budget == starter.budget and default.sample == starter.sample
+    assert default.reference == starter.reference and default.lineage == starter.lineage
