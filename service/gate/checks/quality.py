@@ -36,7 +36,6 @@ from typing import Any, Literal
 import numpy as np
 from pydantic import Field
 
-from service.gate.adaptive import LearnPlan
 from service.gate.checks.base import CheckContext, register, skipped
 from service.gate.checks.comparisons import (
     DIRECTION,
@@ -308,7 +307,9 @@ def run_quality(config: QualityConfig, ctx: CheckContext) -> list[Finding]:
     ran = [r for r in results if r.comparison is not None]
     # The check's share of the budget is split over its units (and the leak guard): Bonferroni.
     guards = 1 if plan is not None or config.max_gain is not None else 0
-    unit_plan = None if plan is None else plan.at_level(_unit_level(plan, len(ran) + guards))
+    unit_plan = plan
+    if plan is not None and plan.level is not None:  # method budget: split the share over units
+        unit_plan = plan.at_level(plan.level / max(1, len(ran) + guards))
     margins = {
         r.unit.label: unit_margin(
             check=config.name,
@@ -357,11 +358,6 @@ def run_quality(config: QualityConfig, ctx: CheckContext) -> list[Finding]:
             leak,
         )
     ]
-
-
-def _unit_level(plan: LearnPlan, units: int) -> float:
-    assert plan.level is not None or plan.method != "budget"
-    return (plan.level or 0.0) / max(1, units) if plan.level is not None else 0.0
 
 
 def _underpowered_all(
