@@ -412,6 +412,8 @@ class CreepResult:
     bound_step: int
     steps_run: int
     problem: str = ""
+    single_by: tuple[str, ...] = ()
+    held_by: tuple[str, ...] = ()
 
 
 @dataclass
@@ -661,7 +663,8 @@ class Stream:
             state, at = self.world.step(state), at + STEP
         # The smallest single-push change held, on a grid of x1.25 steps (side posts).
         single: float | None = None
-        amount = 0.01
+        single_by: tuple[str, ...] = ()
+        amount = 0.001
         # Control: the same side post without the change must pass, else nothing is measured.
         control = make_post(
             self.world,
@@ -686,12 +689,14 @@ class Stream:
                 baseline=self.states.get(base) if base else None,
             )
             post.kind, post.size = f"grid-{kind}", f"{amount:.4f}"
-            if self.side_post(post).decision == "hold":
+            grid = self.side_post(post)
+            if grid.decision == "hold":
                 single = amount
+                single_by = grid.breached
                 break
             amount *= 1.25
         bound = math.ceil(CREEP_BOUND * CREEP_STEPS)
-        result = CreepResult(kind, single, None, bound, 0)
+        result = CreepResult(kind, single, None, bound, 0, single_by=single_by if single else ())
         if single is not None:
             delta = single / CREEP_STEPS
             before = self.baseline_key()
@@ -702,6 +707,7 @@ class Stream:
                 result.steps_run = step
                 if judged.decision == "hold":
                     result.held_step = step
+                    result.held_by = judged.breached
                     break
             if before is not None and self.baseline_key() != before:
                 self.set_baseline(before, "rollback")  # on-call rolls the creep back
@@ -895,9 +901,11 @@ def report(results: list[PolicyResult], size: Size, seed: int, wall: float) -> s
             else:
                 held = f"held at step {c.held_step}" if c.held_step else "never held"
                 out(
-                    f"creep {c.kind}: smallest single-push change held {c.single_push:.4g}; "
-                    f"creep of {c.single_push / CREEP_STEPS:.4g} a push {held} "
-                    f"(bound: step {c.bound_step}, {c.steps_run} steps run)"
+                    f"creep {c.kind}: smallest single-push change held {c.single_push:.4g} "
+                    f"(by {', '.join(c.single_by)}); creep of {c.single_push / CREEP_STEPS:.4g} "
+                    f"a push {held}"
+                    + (f" by {', '.join(c.held_by)}" if c.held_by else "")
+                    + f" (bound: step {c.bound_step}, {c.steps_run} steps run)"
                 )
         out(f"median evaluation time {s.median_ms:.0f} ms; {result.wall_seconds:.0f} s wall")
         met = goals(s)
