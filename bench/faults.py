@@ -927,8 +927,20 @@ def main(argv: list[str] | None = None) -> int:
         size = dataclasses.replace(size, healthy=args.healthy)
     policies = bench_policies([p for p in args.policies.split(",") if p] or None)
     started = time.perf_counter()
-    results = run_all(policies, size, args.seed, jobs=args.jobs)
-    print(report(results, size, args.seed, time.perf_counter() - started))
+    results: list[PolicyResult] = []
+    work = [(p, size, args.seed, True) for p in policies]
+    # Each policy's section as soon as it is done (a long run shows its progress).
+    if args.jobs > 1:
+        with multiprocessing.get_context("spawn").Pool(args.jobs) as pool:
+            for result in pool.imap_unordered(run_policy, work):
+                results.append(result)
+                print(report([result], size, args.seed, time.perf_counter() - started), flush=True)
+    else:
+        for w in work:
+            results.append(run_policy(w))
+            print(report(results[-1:], size, args.seed, time.perf_counter() - started), flush=True)
+    print("=== all policies ===")
+    print(report(results, size, args.seed, time.perf_counter() - started), flush=True)
     return 0
 
 
