@@ -112,6 +112,8 @@ class Size:
     trials: int
     between_creeps: int
     creeps: tuple[str, ...] = CREEP_KINDS
+    #: Policies whose creep is measured; empty: all.
+    creep_policies: tuple[str, ...] = ()
 
     @property
     def rows(self) -> int:
@@ -119,8 +121,15 @@ class Size:
 
 
 FULL = Size(readers=200, warmup=100, healthy=1000, trials=8, between_creeps=30)
+#: The CI-sized run: the creep only for the starter policy (``creep_policies``).
 QUICK = Size(
-    readers=100, warmup=25, healthy=40, trials=1, between_creeps=0, creeps=("calibration",)
+    readers=100,
+    warmup=22,
+    healthy=30,
+    trials=1,
+    between_creeps=0,
+    creeps=("calibration",),
+    creep_policies=("starter",),
 )
 
 
@@ -928,7 +937,7 @@ def main(argv: list[str] | None = None) -> int:
     policies = bench_policies([p for p in args.policies.split(",") if p] or None)
     started = time.perf_counter()
     results: list[PolicyResult] = []
-    work = [(p, size, args.seed, True) for p in policies]
+    work = [(p, size, args.seed, creeps_for(size, p)) for p in policies]
     # Each policy's section as soon as it is done (a long run shows its progress).
     if args.jobs > 1:
         with multiprocessing.get_context("spawn").Pool(args.jobs) as pool:
@@ -944,9 +953,13 @@ def main(argv: list[str] | None = None) -> int:
     return 0
 
 
+def creeps_for(size: Size, policy: Policy) -> bool:
+    return not size.creep_policies or policy.name in size.creep_policies
+
+
 def run_all(policies: list[Policy], size: Size, seed: int, *, jobs: int = 1) -> list[PolicyResult]:
     """Each policy's stream, in order (in *jobs* processes when more than one)."""
-    work = [(p, size, seed, True) for p in policies]
+    work = [(p, size, seed, creeps_for(size, p)) for p in policies]
     if jobs > 1:
         with multiprocessing.get_context("spawn").Pool(jobs) as pool:
             return pool.map(run_policy, work)
