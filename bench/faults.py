@@ -675,12 +675,21 @@ class Stream:
         single_by: tuple[str, ...] = ()
         amount = 0.001
         # Control: the same side post without the change must pass, else nothing is measured.
+        # Side posts of the grid: each one healthy step from the baseline (a fresh next state),
+        # 10 s of watermark apart (lineage holds a watermark that does not advance).
+        side = 0
+
+        def side_at() -> datetime:
+            nonlocal side
+            side += 1
+            return at + timedelta(seconds=10 * side)
+
         control = make_post(
             self.world,
             self.faults,
             key=f"g{self.count:05d}-{kind}-control",
-            state=state,
-            at=at + timedelta(minutes=5),
+            state=self.world.step(state),
+            at=side_at(),
             baseline=self.states.get(self.baseline_key() or ""),
         )
         control.kind, control.size = f"grid-{kind}", "control"
@@ -693,8 +702,8 @@ class Stream:
                 self.world,
                 self.faults,
                 key=f"g{self.count:05d}-{kind}-{amount:.4f}",
-                state=changed(state, amount),
-                at=at + timedelta(minutes=5),
+                state=changed(self.world.step(state), amount),
+                at=side_at(),
                 baseline=self.states.get(base) if base else None,
             )
             post.kind, post.size = f"grid-{kind}", f"{amount:.4f}"
