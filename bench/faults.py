@@ -675,20 +675,22 @@ class Stream:
         single_by: tuple[str, ...] = ()
         amount = 0.001
         # Control: the same side post without the change must pass, else nothing is measured.
-        # Side posts of the grid: each one healthy step from the baseline (a fresh next state),
-        # 10 s of watermark apart (lineage holds a watermark that does not advance).
+        # Side posts of the grid: the next snapshot (one healthy step from the baseline) with
+        # the change, 10 s of watermark apart (lineage holds a watermark that does not
+        # advance), after the last posted watermarks (a fault post sits at at - STEP + 5 min)
+        # and before the next healthy push (at).
         side = 0
 
         def side_at() -> datetime:
             nonlocal side
             side += 1
-            return at + timedelta(seconds=10 * side)
+            return at - STEP + timedelta(minutes=6, seconds=10 * side)
 
         control = make_post(
             self.world,
             self.faults,
             key=f"g{self.count:05d}-{kind}-control",
-            state=self.world.step(state),
+            state=state,
             at=side_at(),
             baseline=self.states.get(self.baseline_key() or ""),
         )
@@ -702,7 +704,7 @@ class Stream:
                 self.world,
                 self.faults,
                 key=f"g{self.count:05d}-{kind}-{amount:.4f}",
-                state=changed(self.world.step(state), amount),
+                state=changed(state, amount),
                 at=side_at(),
                 baseline=self.states.get(base) if base else None,
             )
