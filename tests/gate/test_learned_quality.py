@@ -156,13 +156,18 @@ max_drop = 1.0
 
 def test_quality_margin_is_the_larger_of_stated_and_learned() -> None:
     cols = paired_sample(21, n=20_000, candidate_noise=1.4)  # worse than the baseline by ~0.01
-    plain = _quality_finding(cols, parse_policy(f'models = ["*"]\n[sample]\nmin_rows = 10\n{QUALITY}', name="t"))
+    plain = _quality_finding(
+        cols, parse_policy(f'models = ["*"]\n[sample]\nmin_rows = 10\n{QUALITY}', name="t")
+    )
     assert plain.outcome == "breach"
     # Healthy promotions' 99 % lower bounds of the AUC gain reached about -0.03: normal change
     # is wider than the stated 0.001, so the learned margin applies and the candidate is ok.
     rng = np.random.default_rng(4)
     history = _history(
-        {learn_key("q", "(all)"): rng.normal(-0.02, 0.003, size=40), learn_key("q", "gain"): rng.normal(0, 0.003, size=40)}
+        {
+            learn_key("q", "(all)"): rng.normal(-0.02, 0.003, size=40),
+            learn_key("q", "gain"): rng.normal(0, 0.003, size=40),
+        }
     )
     learned = _quality_finding(cols, _policy(QUALITY), history)
     assert learned.outcome == "ok"
@@ -172,7 +177,9 @@ def test_quality_margin_is_the_larger_of_stated_and_learned() -> None:
     assert learned.details["learning"]["level"] == pytest.approx(0.001 / 2)  # (all) + leak guard
     # Healthy history far tighter than the stated margin: the stated margin stands, and says so.
     tight = _history({learn_key("q", "(all)"): rng.normal(-0.0001, 0.00001, size=40)})
-    stated = _quality_finding(paired_sample(22, n=20_000), _policy(QUALITY.replace("0.001", "0.01")), tight)
+    stated = _quality_finding(
+        paired_sample(22, n=20_000), _policy(QUALITY.replace("0.001", "0.01")), tight
+    )
     assert stated.details["margin_source"] == "stated" and stated.details["margin_used"] == 0.01
     # What a finding offers to later learning: its lower bound per unit and its gain.
     offered = history_values([learned.to_dict()])

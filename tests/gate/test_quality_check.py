@@ -182,6 +182,8 @@ def test_regression_in_one_segment_is_found_and_adjusted() -> None:
         "reader_tenure=returning",
     }
     assert table["device=web"]["outcome"] == "breach"
+    # A unit whose interval straddles the margin while its MDE exceeds it is underpowered now
+    # (issue 9), not inconclusive.
     assert table["device=app"]["outcome"] in ("ok", "inconclusive", "underpowered")
     assert f.outcome == "breach" and "device=web" in f.message
     # The adjusted p-values are Holm's over the five units (statsmodels multipletests).

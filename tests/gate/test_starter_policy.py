@@ -52,7 +52,11 @@ def test_fresh_service_without_policy_folder_judges_with_the_starter(
         scores = np.random.default_rng(1).uniform(0.05, 0.95, 1500).round(4).tolist()
         r = client.post(
             "/v1/models/shelf-ranker/snapshots",
-            json={"key": "s1", "trained_until": "2026-12-01T02:44:00Z", "sample": {"score": scores}},
+            json={
+                "key": "s1",
+                "trained_until": "2026-12-01T02:44:00Z",
+                "sample": {"score": scores},
+            },
         )
         assert r.status_code == 201, r.text
         verdict = r.json()
@@ -95,3 +99,16 @@ def test_checks_whose_inputs_are_absent_are_skipped_with_the_reason() -> None:
     assert by_check["score-psi"].outcome == "ok"
     assert by_check["score-mean-shift"].outcome == "ok"
     assert verdict.decision == "promote"
+
+
+def test_the_folder_fallback_is_the_starter_with_a_held_first_snapshot() -> None:
+    # config/policies/default.toml is the worked fallback of the README: the starter's checks,
+    # budget and rules, except that a new model waits for a person.
+    path = Path(__file__).resolve().parents[2] / "config" / "policies" / "default.toml"
+    fallback = policies_for(path.parent)
+    default = next(p for p in fallback if p.name == "default")
+    starter = starter_policy()
+    assert default.first_snapshot == "hold" and starter.first_snapshot == "promote-if-healthy"
+    assert default.checks == starter.checks
+    assert default.budget == starter.budget and default.sample == starter.sample
+    assert default.reference == starter.reference and default.lineage == starter.lineage

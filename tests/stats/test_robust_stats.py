@@ -167,8 +167,7 @@ def test_tail_limit_exceedance_matches_its_level_by_simulation(n: int) -> None:
     if n == 20:
         naive = sum(
             new[i]
-            > np.median(histories[i])
-            + sps.norm.ppf(1 - level) * robust.qn_scale(histories[i])
+            > np.median(histories[i]) + sps.norm.ppf(1 - level) * robust.qn_scale(histories[i])
             for i in range(trials)
         )
         assert naive / trials > 1.3 * level

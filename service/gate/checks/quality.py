@@ -48,7 +48,6 @@ from service.gate.checks.comparisons import (
     compare_unpaired,
     is_ranking,
     label_of,
-    value_of,
 )
 from service.gate.checks.margins import (
     GAIN_KEY,
@@ -57,29 +56,25 @@ from service.gate.checks.margins import (
     too_few_classes,
     unit_margin,
 )
-from service.gate.checks.memo import codes_of, finite_rows, order_of, take
+from service.gate.checks.memo import codes_of, finite_rows, take
+from service.gate.checks.quality_units import bound_problems, floor_only, paired_auc_units
 from service.gate.checks.segments import (
     ALL,
     CorrectedSegmentKeys,
     Unit,
-    kept_codes,
     matching_rows,
     split,
     where,
 )
 from service.gate.types import Finding, Sample
-from service.stats.auc import AUCChange, delong_paired, has_ties
-from service.stats.delong_segments import delong_paired_by_value
 from service.stats.inference import (
     BoundaryTest,
     ChangeTest,
     against_boundary,
     minimum_detectable_effect,
-    normal_change,
     oriented_interval,
 )
 from service.stats.multiple import adjust
-from service.stats.parallel import both
 
 
 class QualityConfig(CorrectedSegmentKeys):
@@ -252,7 +247,7 @@ def run_quality(config: QualityConfig, ctx: CheckContext) -> list[Finding]:
     rows_used = len(sample) if keep is None else keep.size
     cand_all = _side(sample, keep, "score", config)
     if not paired and not usable_other:
-        return _floor_only(config, ctx, name, cand_all, opts)
+        return floor_only(config, ctx, name, cand_all, opts)
     layout = split(sample, config.segments, config.min_segment_rows, keep=keep)
     if paired:
         base_all = Side(
@@ -269,7 +264,7 @@ def run_quality(config: QualityConfig, ctx: CheckContext) -> list[Finding]:
     # Paired AUC: one sort per score serves all rows and every segment value.
     fast: dict[str, Comparison | str] = {}
     if paired and config.metric == "auc" and config.method == "auto":
-        fast = _paired_auc_units(sample, cand_all, base_all, layout.units, keep, opts, rows_used)
+        fast = paired_auc_units(sample, cand_all, base_all, layout.units, keep, opts, rows_used)
     results: list[UnitResult] = []
     for unit in layout.units:
         rows = rows_used if unit.rows is None else unit.rows.size
@@ -385,91 +380,6 @@ def _underpowered_all(
     )
 
 
-def _paired_auc_units(
-    sample: Sample,
-    cand: Side,
-    base: Side,
-    units: list[Unit],
-    keep: np.ndarray | None,
-    opts: Options,
-    rows: int,
-) -> dict[str, Comparison | str]:
-    """Paired DeLong for every unit from one sort per score (see delong_segments)."""
-    order_c, order_b = both(lambda: order_of(cand.score), lambda: order_of(base.score), rows=rows)
-    ties = (has_ties(cand.score, order_c), has_ties(base.score, order_b))
-    positive = cand.label > 0
-    found: dict[str, AUCChange | str] = {
-        ALL: delong_paired(
-            None, cand.score, base.score, positive=positive, orders=(order_c, order_b), ties=ties
-        )
-    }
-    for column in sorted({u.column for u in units if u.column is not None}):
-        codes, n_values = kept_codes(sample, column, keep)
-        per_value = delong_paired_by_value(
-            positive, cand.score, base.score, (order_c, order_b), codes, n_values, ties=ties
-        )
-        for unit in units:
-            if unit.column == column and unit.index is not None:
-                found[unit.label] = per_value[unit.index]
-    out: dict[str, Comparison | str] = {}
-    for label, result in found.items():
-        if isinstance(result, str):
-            out[label] = result
-            continue
-        n = result.n_positive + result.n_negative
-        test = normal_change(
-            result.difference,
-            result.se,
-            confidence=opts.confidence,
-            method=result.method,
-            n_candidate=n,
-            n_baseline=n,
-        )
-        out[label] = Comparison(result.candidate, result.baseline, test, "rows")
-    return out
-
-
-def _floor_only(
-    config: QualityConfig, ctx: CheckContext, name: str, cand: Side, opts: Options
-) -> list[Finding]:
-    """No baseline to compare with: judge the candidate's own value against floor/ceiling."""
-    if config.floor is None and config.ceiling is None:
-        return [
-            skipped(
-                config,
-                f"{name}: no baseline_score and no {config.against} sample with labels "
-                "to compare with",
-                statistic=config.metric,
-            )
-        ]
-    value = value_of(cand, opts)
-    problems = _bounds(config, name, value)
-    return [
-        Finding(
-            check=config.name,
-            kind=config.kind,
-            outcome="breach" if problems else "ok",
-            statistic=config.metric,
-            candidate_value=value,
-            limit=config.floor if config.floor is not None else config.ceiling,
-            message="; ".join(problems)
-            or f"{name} {value:.4g} within bounds (nothing to compare with)",
-            blocking=config.blocking,
-            against=config.against,
-            details={"rows": int(cand.score.size), "mode": "candidate only"},
-        )
-    ]
-
-
-def _bounds(config: QualityConfig, name: str, value: float) -> list[str]:
-    problems = []
-    if config.floor is not None and value < config.floor:
-        problems.append(f"{name} {value:.4g} is below the floor {config.floor:g}")
-    if config.ceiling is not None and value > config.ceiling:
-        problems.append(f"{name} {value:.4g} is above the ceiling {config.ceiling:g}")
-    return problems
-
-
 def _outcome(
     config: QualityConfig,
     test: ChangeTest,
@@ -577,7 +487,7 @@ def _finding(
     mde = minimum_detectable_effect(test.se, confidence=config.confidence, power=config.power)
     used = margins[ALL]
     limit = sign * _boundary(config, used.margin)  # the boundary in the metric's own units
-    problems = _bounds(config, name, whole.comparison.candidate_value)
+    problems = bound_problems(config, name, whole.comparison.candidate_value)
     by = {kind: [lab for lab, v in verdicts.items() if v == kind] for kind in _VERDICTS}
     conf = f"{config.confidence:.0%}"
     low, high = test.interval
