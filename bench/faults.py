@@ -120,7 +120,7 @@ class Size:
         return self.readers * ITEMS_PER_READER
 
 
-FULL = Size(readers=200, warmup=100, healthy=1000, trials=8, between_creeps=30)
+FULL = Size(readers=100, warmup=100, healthy=1000, trials=8, between_creeps=30)
 #: The CI-sized run: the creep only for the starter policy (``creep_policies``).
 QUICK = Size(
     readers=100,
@@ -355,7 +355,8 @@ def make_post(
         dead = faults.dead[value]
     logit = world.logit(state, at, dead=dead)
     if baseline is not None:
-        base_logit = world.logit(baseline[0], baseline[1])
+        # The same rows, at the same time of day, scored by the baseline's model.
+        base_logit = world.logit(baseline[0], at)
     else:
         base_logit = logit.copy()
     served_logit = base_logit.copy()
@@ -731,6 +732,8 @@ class Stream:
                     break
             if before is not None and self.baseline_key() != before:
                 self.set_baseline(before, "rollback")  # on-call rolls the creep back
+            # The creep's last push was posted at `at`: go on from the next one.
+            state, at = self.world.step(state), at + STEP
         self.result.creeps.append(result)
         return state, at
 
