@@ -106,8 +106,11 @@ def test_log_spread_against_numpy() -> None:
 
 def test_learned_two_sided_limit_after_warm_up() -> None:
     rng = np.random.default_rng(8)
-    # Healthy sums scattered with sd 0.02 around 0; steps 0 so only the candidate's counts.
-    history = [entry(i, 0.0, total=float(x)) for i, x in enumerate(rng.normal(0, 0.02, 60), 1)]
+    # Healthy sums scattered with sd 0.02 around 0, trained 6 h (24 pushes) or more before the
+    # candidate (sums inside the window are not learned from); steps 0 in the window.
+    history = [entry(i, 0.0) for i in range(1, 25)] + [
+        entry(i, 0.0, total=float(x)) for i, x in enumerate(rng.normal(0, 0.02, 60), 25)
+    ]
     ok = run(BUDGET, candidate(shift=0.03), history)
     assert ok.outcome == "ok" and set(ok.details["bounds"]) == {"upper", "lower"}
     upper = ok.details["bounds"]["upper"]
@@ -117,8 +120,11 @@ def test_learned_two_sided_limit_after_warm_up() -> None:
     assert run(BUDGET, candidate(shift=0.15), history).outcome == "breach"
     assert run(BUDGET, candidate(shift=-0.15), history).outcome == "breach"
     # Warm-up: with 10 healthy sums the static 0.5 holds, so 0.15 passes.
-    warm = run(BUDGET, candidate(shift=0.15), history[:10])
+    warm = run(BUDGET, candidate(shift=0.15), history[:34])
     assert warm.outcome == "ok" and "warm-up" in warm.message
+    # Sums inside the window are never learned from: a creep cannot widen its own limit.
+    inside = [entry(i, 0.0, total=0.3 * (-1) ** i) for i in range(1, 24)] + history[23:]
+    assert run(BUDGET, candidate(shift=0.03), inside).details["bounds"] == ok.details["bounds"]
 
 
 def test_without_baseline_scores_or_window_it_is_skipped() -> None:

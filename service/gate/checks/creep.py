@@ -18,8 +18,10 @@ paired steps:
   of paired means only (held snapshots never joined the chain, so their steps are not summed);
 - the limit is learned under the policy's ``[budget]`` from the same sums on the model's healthy
   history, two-sided, the check's share of the budget split between the two tails (a robust
-  fit: median and Qn, :func:`service.stats.robust.tail_limit`); before ``min_history`` healthy
-  sums exist (warm-up), or without a budget, the static ``max`` on the absolute sum holds.
+  fit: median and Qn, :func:`service.stats.robust.tail_limit`); only sums trained before the
+  window count, so a creep's own promoted sums cannot widen the limit while it goes on; before
+  ``min_history`` such sums exist (warm-up), or without a budget, the static ``max`` on the
+  absolute sum holds.
 
 A healthy stream's sums stay within the spread its history shows; a creep's grow every push.
 With a logit scale the scores must lie strictly between 0 and 1 (other rows are left out);
@@ -169,9 +171,14 @@ def run_creep(config: CreepConfig, ctx: CheckContext) -> list[Finding]:
     bounds: dict[str, float] = {}
     why = f"static limit {config.max:g} (no [budget] in the policy)"
     if plan is not None and plan.level is not None:
+        # Learn from sums trained before the window only: a creep's own promoted sums (inside
+        # the window) would otherwise widen the limit as the creep goes on.
+        def value_of(entry: HistoryEntry) -> float | None:
+            return None if _in_window(entry, ctx, hours) else entry.values.get(sum_key)
+
         selection = select_history(
             ctx.history,
-            lambda entry: entry.values.get(sum_key),
+            value_of,
             now=ctx.now,
             window=plan.window,
             window_hours=plan.window_hours,
