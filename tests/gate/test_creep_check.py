@@ -59,7 +59,13 @@ def entry(i: int, step: float, *, healthy: bool = True, total: float | None = No
     )
 
 
-def run(policy_text: str, cand: Snapshot, history: list[HistoryEntry], **keys: object):  # type: ignore[no-untyped-def]
+def run(  # type: ignore[no-untyped-def]
+    policy_text: str,
+    cand: Snapshot,
+    history: list[HistoryEntry],
+    baseline: Snapshot | None = None,
+    **keys: object,
+):
     policy = parse_policy(policy_text, name="p")
     config = policy.checks[0]
     if keys:
@@ -68,7 +74,7 @@ def run(policy_text: str, cand: Snapshot, history: list[HistoryEntry], **keys: o
     ctx = CheckContext(
         candidate=cand,
         other=None,
-        baseline=None,
+        baseline=baseline,
         reference=None,
         history=tuple(history),
         now=NOW,
@@ -93,6 +99,11 @@ def test_the_step_is_the_paired_mean_logit_change_and_the_chain_telescopes() -> 
     assert finding.value == pytest.approx(expected + 22 * 0.01, rel=1e-12)
     assert finding.outcome == "ok"  # 0.25 < static 0.5
     assert run(NO_BUDGET, candidate(shift=0.3), history).outcome == "breach"  # 0.52 > 0.5
+    # After a rollback to the snapshot trained 2 h ago, the 7 promotions trained after it are
+    # off the chain (entries 1..7; entry 4 was held anyway).
+    rolled_back_to = Snapshot(model="m", key="s8", trained_until=NOW - timedelta(hours=2))
+    finding = run(NO_BUDGET, cand, history, baseline=rolled_back_to)
+    assert finding.details["chain_steps"] == 22 - 6
 
 
 def test_log_spread_against_numpy() -> None:

@@ -15,7 +15,8 @@ paired steps:
   the last ``hours`` of watermark (default: the policy's ``[reference] lag_hours``). Each of
   those steps was measured against the baseline it replaced, so the sum telescopes: it estimates
   the candidate's change against the baseline of ``hours`` of training earlier, with the noise
-  of paired means only (held snapshots never joined the chain, so their steps are not summed);
+  of paired means only (held snapshots never joined the chain, so their steps are not summed,
+  nor are promotions trained after the current baseline: a rollback took them off the chain);
 - the limit is learned under the policy's ``[budget]`` from the same sums on the model's healthy
   history, two-sided, the check's share of the budget split between the two tails (a robust
   fit: median and Qn, :func:`service.stats.robust.tail_limit`); only sums trained before the
@@ -152,10 +153,16 @@ def run_creep(config: CreepConfig, ctx: CheckContext) -> list[Finding]:
             )
         ]
     step_key = learn_key(config.name, "step")
+    # The chain ends at the baseline: promotions trained after it (a rollback moved the baseline
+    # back past them) are not its ancestors.
+    base_mark = ctx.baseline.trained_until if ctx.baseline is not None else None
     chain = [
         entry.values[step_key]
         for entry in ctx.history
-        if entry.healthy and step_key in entry.values and _in_window(entry, ctx, hours)
+        if entry.healthy
+        and step_key in entry.values
+        and _in_window(entry, ctx, hours)
+        and (base_mark is None or entry.trained_until is None or entry.trained_until <= base_mark)
     ]
     total = step + float(sum(chain))
     details: dict[str, object] = {
