@@ -44,8 +44,14 @@ def candidate(shift: float = 0.0, spread: float = 1.0, seed: int = 3) -> Snapsho
     return Snapshot(model="m", key="cand", trained_until=NOW, sample=sample)
 
 
-def entry(i: int, step: float, *, healthy: bool = True, total: float | None = None) -> HistoryEntry:
+def entry(
+    i: int, step: float, *, healthy: bool = True, total: float | None = None, below: int = 0
+) -> HistoryEntry:
+    """The verdict of the push trained 15 x *i* minutes before NOW; *below*: its baseline was
+    the push *below* (0: not recorded)."""
     values = {learn_key("c", "step"): step}
+    if below:
+        values[learn_key("c", "baseline_until")] = (NOW - timedelta(minutes=15 * below)).timestamp()
     if total is not None:
         values[learn_key("c", "sum")] = total
     return HistoryEntry(
@@ -99,11 +105,18 @@ def test_the_step_is_the_paired_mean_logit_change_and_the_chain_telescopes() -> 
     assert finding.value == pytest.approx(expected + 22 * 0.01, rel=1e-12)
     assert finding.outcome == "ok"  # 0.25 < static 0.5
     assert run(NO_BUDGET, candidate(shift=0.3), history).outcome == "breach"  # 0.52 > 0.5
-    # After a rollback to the snapshot trained 2 h ago, the 7 promotions trained after it are
-    # off the chain (entries 1..7; entry 4 was held anyway).
+    # With the baselines recorded, the chain is walked from the baseline down: 1 -> 2 -> 3 -> 5
+    # (4 was held, so 5 was 3's baseline) -> 6 ... -> 23; 24 is 6 h back, outside.
+    linked = [entry(i, 0.01, below=i + 1 if i != 3 else 5) for i in range(1, 30)]
+    linked[3] = entry(4, 0.5, healthy=False)
+    baseline = Snapshot(model="m", key="s1", trained_until=NOW - timedelta(minutes=15))
+    assert run(NO_BUDGET, cand, linked, baseline=baseline).details["chain_steps"] == 22
+    # After a rollback to the snapshot trained 2 h ago (8), the promotions after it (1-7) are
+    # not its ancestors: the chain is 8 ... 23.
     rolled_back_to = Snapshot(model="m", key="s8", trained_until=NOW - timedelta(hours=2))
-    finding = run(NO_BUDGET, cand, history, baseline=rolled_back_to)
-    assert finding.details["chain_steps"] == 22 - 6
+    finding = run(NO_BUDGET, cand, linked, baseline=rolled_back_to)
+    assert finding.details["chain_steps"] == 16
+    assert finding.details["learn"]["baseline_until"] == (NOW - timedelta(hours=2)).timestamp()
 
 
 def test_log_spread_against_numpy() -> None:

@@ -15,8 +15,9 @@ paired steps:
   the last ``hours`` of watermark (default: the policy's ``[reference] lag_hours``). Each of
   those steps was measured against the baseline it replaced, so the sum telescopes: it estimates
   the candidate's change against the baseline of ``hours`` of training earlier, with the noise
-  of paired means only (held snapshots never joined the chain, so their steps are not summed,
-  nor are promotions trained after the current baseline: a rollback took them off the chain);
+  of paired means only. The chain is walked from the current baseline down through the
+  baselines each one replaced (each finding keeps its baseline's watermark), so held snapshots
+  and promotions that a rollback took off the chain are never summed;
 - the limit is learned under the policy's ``[budget]`` from the same sums on the model's healthy
   history, two-sided, the check's share of the budget split between the two tails (a robust
   fit: median and Qn, :func:`service.stats.robust.tail_limit`); only sums trained before the
@@ -34,7 +35,7 @@ With a logit scale the scores must lie strictly between 0 and 1 (other rows are 
 from __future__ import annotations
 
 import math
-from datetime import timedelta
+from datetime import datetime, timedelta
 from typing import Literal
 
 import numpy as np
@@ -108,6 +109,37 @@ def _in_window(entry: HistoryEntry, ctx: CheckContext, hours: float) -> bool:
     return ctx.now - timedelta(hours=hours) < entry.created_at <= ctx.now
 
 
+def _chain(
+    config: CreepConfig, ctx: CheckContext, hours: float, base_mark: datetime | None
+) -> list[float]:
+    """The steps of the baseline and its ancestors trained within the window, newest first.
+
+    Each finding stores the watermark of the baseline it was judged against
+    (``learn.baseline_until``), so the chain is walked from the current baseline down through
+    the baselines each one replaced: a promotion that a rollback took off the chain is never
+    an ancestor. Watermarks identify snapshots (lineage makes them strictly increasing).
+    Without a watermark the candidate falls back to every healthy promotion in the window.
+    """
+    step_key = learn_key(config.name, "step")
+    up_key = learn_key(config.name, "baseline_until")
+    healthy = [e for e in ctx.history if e.healthy and step_key in e.values]
+    mark = ctx.candidate.trained_until
+    if mark is None or base_mark is None:
+        return [e.values[step_key] for e in healthy if _in_window(e, ctx, hours)]
+    by_mark = {e.trained_until.timestamp(): e for e in healthy if e.trained_until is not None}
+    floor = (mark - timedelta(hours=hours)).timestamp()
+    steps: list[float] = []
+    at: float | None = base_mark.timestamp()
+    while at is not None and at > floor:
+        entry = by_mark.get(at)
+        if entry is None:
+            break
+        steps.append(entry.values[step_key])
+        below = entry.values.get(up_key)
+        at = below if below is not None and below < at else None
+    return steps
+
+
 @register("creep", CreepConfig, family="history", needs_other=False)
 def run_creep(config: CreepConfig, ctx: CheckContext) -> list[Finding]:
     sample = ctx.candidate.sample
@@ -152,25 +184,16 @@ def run_creep(config: CreepConfig, ctx: CheckContext) -> list[Finding]:
                 f"{label}: only {n} usable paired rows ({config.min_rows} needed) or no spread",
             )
         ]
-    step_key = learn_key(config.name, "step")
-    # The chain ends at the baseline: promotions trained after it (a rollback moved the baseline
-    # back past them) are not its ancestors.
     base_mark = ctx.baseline.trained_until if ctx.baseline is not None else None
-    chain = [
-        entry.values[step_key]
-        for entry in ctx.history
-        if entry.healthy
-        and step_key in entry.values
-        and _in_window(entry, ctx, hours)
-        and (base_mark is None or entry.trained_until is None or entry.trained_until <= base_mark)
-    ]
+    chain = _chain(config, ctx, hours, base_mark)
     total = step + float(sum(chain))
     details: dict[str, object] = {
         "step": step,
         "rows": n,
         "hours": hours,
         "chain_steps": len(chain),
-        "learn": {"step": step, "sum": total},
+        "learn": {"step": step, "sum": total}
+        | ({"baseline_until": base_mark.timestamp()} if base_mark is not None else {}),
     }
     where = f"{label} over the last {hours:g} h of training ({len(chain) + 1} steps)"
     plan = ctx.policy.learn_plan(config)
