@@ -98,6 +98,8 @@ FAULT_SIZES: dict[str, tuple[tuple[float, float], str]] = {
 CREEP_KINDS = ("calibration", "spread")
 CREEP_STEPS = 8  # the creep moves 1/8 of the smallest held single-push change per push
 CREEP_BOUND = 1.5  # held before the accumulated change reaches 1.5 times that change
+#: Above this many false holds per 1,000 a creep's hold tells nothing (the gate holds anyway).
+CREEP_MEANINGFUL_PER_1000 = 50.0
 
 
 @dataclass(frozen=True)
@@ -110,15 +112,24 @@ class Size:
     trials: int
     between_creeps: int
     creeps: tuple[str, ...] = CREEP_KINDS
+    #: Policies whose creep is measured; empty: all.
+    creep_policies: tuple[str, ...] = ()
 
     @property
     def rows(self) -> int:
         return self.readers * ITEMS_PER_READER
 
 
-FULL = Size(readers=200, warmup=100, healthy=1000, trials=8, between_creeps=30)
+FULL = Size(readers=100, warmup=100, healthy=1000, trials=8, between_creeps=30)
+#: The CI-sized run: the creep only for the starter policy (``creep_policies``).
 QUICK = Size(
-    readers=100, warmup=25, healthy=40, trials=1, between_creeps=0, creeps=("calibration",)
+    readers=100,
+    warmup=22,
+    healthy=30,
+    trials=1,
+    between_creeps=0,
+    creeps=("calibration",),
+    creep_policies=("starter",),
 )
 
 
@@ -344,7 +355,8 @@ def make_post(
         dead = faults.dead[value]
     logit = world.logit(state, at, dead=dead)
     if baseline is not None:
-        base_logit = world.logit(baseline[0], baseline[1])
+        # The same rows, at the same time of day, scored by the baseline's model.
+        base_logit = world.logit(baseline[0], at)
     else:
         base_logit = logit.copy()
     served_logit = base_logit.copy()
@@ -410,6 +422,8 @@ class CreepResult:
     bound_step: int
     steps_run: int
     problem: str = ""
+    single_by: tuple[str, ...] = ()
+    held_by: tuple[str, ...] = ()
 
 
 @dataclass
@@ -659,14 +673,26 @@ class Stream:
             state, at = self.world.step(state), at + STEP
         # The smallest single-push change held, on a grid of x1.25 steps (side posts).
         single: float | None = None
-        amount = 0.01
+        single_by: tuple[str, ...] = ()
+        amount = 0.001
         # Control: the same side post without the change must pass, else nothing is measured.
+        # Side posts of the grid: the next snapshot (one healthy step from the baseline) with
+        # the change, 10 s of watermark apart (lineage holds a watermark that does not
+        # advance), after the last posted watermarks (a fault post sits at at - STEP + 5 min)
+        # and before the next healthy push (at).
+        side = 0
+
+        def side_at() -> datetime:
+            nonlocal side
+            side += 1
+            return at - STEP + timedelta(minutes=6, seconds=10 * side)
+
         control = make_post(
             self.world,
             self.faults,
             key=f"g{self.count:05d}-{kind}-control",
             state=state,
-            at=at + timedelta(minutes=5),
+            at=side_at(),
             baseline=self.states.get(self.baseline_key() or ""),
         )
         control.kind, control.size = f"grid-{kind}", "control"
@@ -680,16 +706,18 @@ class Stream:
                 self.faults,
                 key=f"g{self.count:05d}-{kind}-{amount:.4f}",
                 state=changed(state, amount),
-                at=at + timedelta(minutes=5),
+                at=side_at(),
                 baseline=self.states.get(base) if base else None,
             )
             post.kind, post.size = f"grid-{kind}", f"{amount:.4f}"
-            if self.side_post(post).decision == "hold":
+            grid = self.side_post(post)
+            if grid.decision == "hold":
                 single = amount
+                single_by = grid.breached
                 break
             amount *= 1.25
         bound = math.ceil(CREEP_BOUND * CREEP_STEPS)
-        result = CreepResult(kind, single, None, bound, 0)
+        result = CreepResult(kind, single, None, bound, 0, single_by=single_by if single else ())
         if single is not None:
             delta = single / CREEP_STEPS
             before = self.baseline_key()
@@ -700,9 +728,12 @@ class Stream:
                 result.steps_run = step
                 if judged.decision == "hold":
                     result.held_step = step
+                    result.held_by = judged.breached
                     break
             if before is not None and self.baseline_key() != before:
                 self.set_baseline(before, "rollback")  # on-call rolls the creep back
+            # The creep's last push was posted at `at`: go on from the next one.
+            state, at = self.world.step(state), at + STEP
         self.result.creeps.append(result)
         return state, at
 
@@ -827,10 +858,12 @@ def goals(s: Summary) -> dict[str, bool]:
         "false holds <= 1 per 1,000": s.per_1000 <= 1.0,
         "blatant held >= 99 %": rate(blatant) >= 0.99,
         "near-floor held >= 90 %": rate(near) >= 0.90,
+        # A creep "held" by a gate that holds healthy pushes anyway proves nothing.
         "creep held within the bound": all(
             c.held_step is not None and c.held_step <= c.bound_step for c in s.creeps
         )
-        and bool(s.creeps),
+        and bool(s.creeps)
+        and s.per_1000 <= CREEP_MEANINGFUL_PER_1000,
     }
 
 
@@ -891,9 +924,11 @@ def report(results: list[PolicyResult], size: Size, seed: int, wall: float) -> s
             else:
                 held = f"held at step {c.held_step}" if c.held_step else "never held"
                 out(
-                    f"creep {c.kind}: smallest single-push change held {c.single_push:.4g}; "
-                    f"creep of {c.single_push / CREEP_STEPS:.4g} a push {held} "
-                    f"(bound: step {c.bound_step}, {c.steps_run} steps run)"
+                    f"creep {c.kind}: smallest single-push change held {c.single_push:.4g} "
+                    f"(by {', '.join(c.single_by)}); creep of {c.single_push / CREEP_STEPS:.4g} "
+                    f"a push {held}"
+                    + (f" by {', '.join(c.held_by)}" if c.held_by else "")
+                    + f" (bound: step {c.bound_step}, {c.steps_run} steps run)"
                 )
         out(f"median evaluation time {s.median_ms:.0f} ms; {result.wall_seconds:.0f} s wall")
         met = goals(s)
@@ -915,14 +950,30 @@ def main(argv: list[str] | None = None) -> int:
         size = dataclasses.replace(size, healthy=args.healthy)
     policies = bench_policies([p for p in args.policies.split(",") if p] or None)
     started = time.perf_counter()
-    results = run_all(policies, size, args.seed, jobs=args.jobs)
-    print(report(results, size, args.seed, time.perf_counter() - started))
+    results: list[PolicyResult] = []
+    work = [(p, size, args.seed, creeps_for(size, p)) for p in policies]
+    # Each policy's section as soon as it is done (a long run shows its progress).
+    if args.jobs > 1:
+        with multiprocessing.get_context("spawn").Pool(args.jobs) as pool:
+            for result in pool.imap_unordered(run_policy, work):
+                results.append(result)
+                print(report([result], size, args.seed, time.perf_counter() - started), flush=True)
+    else:
+        for w in work:
+            results.append(run_policy(w))
+            print(report(results[-1:], size, args.seed, time.perf_counter() - started), flush=True)
+    print("=== all policies ===")
+    print(report(results, size, args.seed, time.perf_counter() - started), flush=True)
     return 0
+
+
+def creeps_for(size: Size, policy: Policy) -> bool:
+    return not size.creep_policies or policy.name in size.creep_policies
 
 
 def run_all(policies: list[Policy], size: Size, seed: int, *, jobs: int = 1) -> list[PolicyResult]:
     """Each policy's stream, in order (in *jobs* processes when more than one)."""
-    work = [(p, size, seed, True) for p in policies]
+    work = [(p, size, seed, creeps_for(size, p)) for p in policies]
     if jobs > 1:
         with multiprocessing.get_context("spawn").Pool(jobs) as pool:
             return pool.map(run_policy, work)
