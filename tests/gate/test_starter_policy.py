@@ -29,7 +29,7 @@ def test_starter_is_packaged_and_parses() -> None:
     assert policy.on_underpowered == "promote"
     assert policy.reference.lag_hours == 6 and policy.lineage.watermark_must_advance
     kinds = {c.kind for c in policy.checks}
-    assert kinds == {"drift", "paired", "quality", "lists", "skew", "training-volume"}
+    assert kinds == {"drift", "paired", "quality", "lists", "skew", "training-volume", "creep"}
     # Every blocking check learns under the budget: the budget is split over all of them.
     assert len(policy.budget_checks()) == len([c for c in policy.checks if c.blocking])
     assert select_policy([policy], "any-model-at-all") is policy
