@@ -944,10 +944,19 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--jobs", type=int, default=1, help="policies run in parallel")
     parser.add_argument("--policies", default="", help="comma-separated policy names")
     parser.add_argument("--healthy", type=int, default=0, help="override healthy pushes")
+    parser.add_argument("--warmup", type=int, default=0, help="override warm-up pushes")
+    parser.add_argument("--trials", type=int, default=0, help="override trials per fault")
+    parser.add_argument("--creeps", default="", help="comma-separated creep kinds to measure")
     args = parser.parse_args(argv)
     size = QUICK if args.quick else FULL
     if args.healthy:
         size = dataclasses.replace(size, healthy=args.healthy)
+    if args.warmup:
+        size = dataclasses.replace(size, warmup=args.warmup)
+    if args.trials:
+        size = dataclasses.replace(size, trials=args.trials)
+    if args.creeps:
+        size = dataclasses.replace(size, creeps=tuple(args.creeps.split(",")))
     policies = bench_policies([p for p in args.policies.split(",") if p] or None)
     started = time.perf_counter()
     results: list[PolicyResult] = []
