@@ -273,3 +273,22 @@ def test_drift_with_too_few_finite_scores_is_inconclusive_not_skipped() -> None:
     assert finding.outcome == "inconclusive"
     assert "3 baseline" in finding.message
     assert verdict.decision == "hold"
+
+
+def test_explain_treats_underpowered_as_not_holding_unless_the_policy_held_for_it() -> None:
+    from service import explain
+
+    finding = {
+        "check": "q",
+        "kind": "quality",
+        "outcome": "underpowered",
+        "blocking": True,
+        "message": "AUC ...: underpowered",
+    }
+    promoted = {"decision": "promote", "reasons": [], "findings": [finding]}
+    held = {"decision": "hold", "reasons": ["underpowered: AUC ..."], "findings": [finding]}
+    assert explain.failed_findings(promoted) == []
+    assert explain.failed_findings(held) == [finding]
+    assert explain.assess(finding)[0] == "uncertain"
+    assert explain.MARK["underpowered"] == "~"
+    assert explain.ORDER["inconclusive"] < explain.ORDER["underpowered"] < explain.ORDER["ok"]
