@@ -29,7 +29,7 @@ from service.api.routers import metrics as metrics_routes
 from service.api.routers import policies as policy_routes
 from service.api.routers import tokens as token_routes
 from service.budget import Slots, over_resample_cap
-from service.gate.policy import Policy, PolicyError, load_policies
+from service.gate.policy import Policy, PolicyError, policies_for
 from service.heavy import Heavy
 from service.metrics import Metrics
 from service.settings import Settings
@@ -68,7 +68,7 @@ def create_app(
             "OPEN mode: no API tokens are checked (demo and local development only)",
             extra=logs.fields(event="auth", auth="open"),
         )
-    loaded = list(policies) if policies is not None else load_policies(settings.policy_dir)
+    loaded = list(policies) if policies is not None else policies_for(settings.policy_dir)
     for policy in loaded:
         too_many = over_resample_cap(policy, settings.max_resamples)
         if too_many is not None:

@@ -83,12 +83,12 @@ def cmd_db(args: argparse.Namespace) -> int:
 
 
 def cmd_policy_check(args: argparse.Namespace) -> int:
-    from service.gate.policy import PolicyError, load_policies
+    from service.gate.policy import PolicyError, policies_for
     from service.settings import Settings
 
     folder = Path(args.folder) if args.folder else Settings().policy_dir
     try:
-        policies = load_policies(folder)
+        policies = policies_for(folder)
     except PolicyError as exc:
         print(f"error: {exc}", file=sys.stderr)
         return EXIT_ERROR

@@ -14,8 +14,22 @@ from collections.abc import Mapping, Sequence
 from datetime import UTC, datetime
 from typing import Any
 
-MARK = {"breach": "x", "advisory": "!", "inconclusive": "?", "ok": "-", "skipped": " "}
-ORDER = {"breach": 0, "inconclusive": 1, "advisory": 2, "ok": 3, "skipped": 4}
+MARK = {
+    "breach": "x",
+    "advisory": "!",
+    "inconclusive": "?",
+    "underpowered": "~",
+    "ok": "-",
+    "skipped": " ",
+}
+ORDER = {
+    "breach": 0,
+    "inconclusive": 1,
+    "underpowered": 2,
+    "advisory": 3,
+    "ok": 4,
+    "skipped": 5,
+}
 SECTIONS = (
     ("why", "Why"),
     ("how_sure", "How sure"),
@@ -66,6 +80,11 @@ def assess(finding: Mapping[str, Any]) -> tuple[str, str]:
         return "certain", "the check itself failed to run; the gate holds when it cannot judge"
     if outcome == "inconclusive":
         return "uncertain", "the data cannot settle it either way"
+    if outcome == "underpowered":
+        return "uncertain", (
+            "the sample is too small to decide against the margin: no evidence of harm, and "
+            "none of safety; the minimum detectable effect says how many rows would decide it"
+        )
     if kind == "health":
         return "certain", "read straight off the candidate's own sample: no sampling error"
     if kind == "lineage":
@@ -105,11 +124,21 @@ def assess(finding: Mapping[str, Any]) -> tuple[str, str]:
     return "likely", source
 
 
+def holding_outcomes(verdict: Mapping[str, Any]) -> set[str]:
+    """Outcomes of a blocking finding that count against this verdict: breach and
+    inconclusive, and underpowered when the policy held for it (a reason says so)."""
+    outcomes = {"breach", "inconclusive"}
+    if any(str(r).startswith("underpowered:") for r in verdict.get("reasons", [])):
+        outcomes.add("underpowered")
+    return outcomes
+
+
 def failed_findings(verdict: Mapping[str, Any]) -> list[Mapping[str, Any]]:
+    outcomes = holding_outcomes(verdict)
     return [
         f
         for f in verdict.get("findings", [])
-        if f.get("blocking", True) and f.get("outcome") in {"breach", "inconclusive"}
+        if f.get("blocking", True) and f.get("outcome") in outcomes
     ]
 
 

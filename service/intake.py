@@ -61,17 +61,28 @@ class Submitted:
 
 
 def resolve_reference(
-    session: Session, *, model: ModelRow, policy: Policy | None, now: datetime
+    session: Session,
+    *,
+    model: ModelRow,
+    policy: Policy | None,
+    now: datetime,
+    watermark: datetime | None = None,
 ) -> SnapshotRow | None:
     """The model's reference snapshot (rules in service/gate/reference.py): the one an
-    operator pinned; else, when the policy sets ``[reference] lag_hours``, the snapshot that
-    was the baseline that many hours ago; else none."""
+    operator pinned; else, when the policy sets ``[reference] lag_hours``, the newest baseline
+    trained at least that many hours before the candidate's *watermark* (by the clock only when
+    the candidate has no watermark); else none."""
     pinned = repo.snapshot_by_id(session, snapshot_id=model.reference_id)
     if pinned is not None:
         return pinned
     lag = policy.reference.lag_hours if policy is not None else None
     if lag is None:
         return None
+    if watermark is not None:
+        # The SQL form of service.gate.reference.baseline_as_of_watermark.
+        return repo.promoted_as_of_watermark(
+            session, model_id=model.id, until=watermark - timedelta(hours=lag)
+        )
     # The SQL form of service.gate.reference.baseline_as_of.
     row = repo.promotion_as_of(session, model_id=model.id, at=now - timedelta(hours=lag))
     return session.get(SnapshotRow, row.snapshot_id) if row is not None else None
@@ -126,6 +137,8 @@ def submit(
             "use a new key for a new snapshot",
             field="key",
         )
+    # Read before the candidate is stored: the newest watermark of the earlier snapshots.
+    newest_watermark = repo.newest_watermark(session, model_id=model.id)
     snapshot_row = repo.add_snapshot(
         session,
         model_id=model.id,
@@ -145,7 +158,9 @@ def submit(
     reference_row: SnapshotRow | None = None
     started = time.perf_counter()
     try:
-        reference_row = resolve_reference(session, model=model, policy=policy, now=now)
+        reference_row = resolve_reference(
+            session, model=model, policy=policy, now=now, watermark=post.trained_until
+        )
         candidate = Snapshot(
             model=model_name,
             key=post.key,
@@ -182,6 +197,7 @@ def submit(
             known_keys=repo.known_keys(
                 session, model_id=model.id, among=[post.parent] if post.parent else []
             ),
+            newest_watermark=newest_watermark,
         )
         verdict = evaluate(inp, policy)
     except Exception as exc:  # fail closed

@@ -125,6 +125,9 @@ def replay(
                 known_keys=repo.known_keys(
                     session, model_id=model.id, among=[snap.parent_key] if snap.parent_key else []
                 ),
+                newest_watermark=repo.newest_watermark(
+                    session, model_id=model.id, before_snapshot_id=snap.id
+                ),
             )
             outcome = evaluate(inp, policy)
         except Exception as exc:  # fail closed, as in a live post

@@ -21,7 +21,11 @@ class Settings(BaseSettings):
         description="SQLAlchemy URL of the database: a SQLite file (default) or PostgreSQL "
         "(postgresql+psycopg://user@host/db).",
     )
-    policy_dir: Path = Field(Path("config/policies"), description="Folder of policy TOML files.")
+    policy_dir: Path | None = Field(
+        None,
+        description="Folder of policy TOML files; unset: the packaged starter policy judges "
+        "every model.",
+    )
     migrate_on_start: bool = Field(
         False, description="Upgrade the database to the current revision when the service starts."
     )

@@ -133,7 +133,7 @@ class SnapshotCreate(SnapshotMeta):
 class FindingPublic(BaseModel):
     check: str
     kind: str
-    outcome: Literal["ok", "breach", "advisory", "inconclusive", "skipped"]
+    outcome: Literal["ok", "breach", "advisory", "inconclusive", "underpowered", "skipped"]
     statistic: str | None = None
     value: float | None = None
     limit: float | None = None

@@ -1,24 +1,45 @@
-"""Adaptive limits: a check's limit learned from the same check's values on earlier healthy
-promotions. Pure.
+"""Learned limits: a check's limit learned from the same check's values on earlier healthy
+promotions, and the false-hold budget that sets how far out in the tail it sits. Pure.
 
-A check that reports a ``value`` against a ``limit`` (drift statistics, metric changes, list
-measures, skew) may carry an ``adaptive`` table in the policy. After the check has judged the
-candidate with its static limit, :func:`apply_adaptive` replaces that limit by one learned from
-history and judges again:
+A check that reports a ``value`` against a ``limit`` (drift statistics, paired change, metric
+changes, list measures, skew, and any later kind that reports a value on a bad side) can learn
+its limit from history in two ways:
 
-- ``method = "robust-z"``: ``median + k * robust sigma`` of the history (Hampel identifier; the
-  robust sigma is ``1.4826 * MAD``, see :mod:`service.stats.robust`);
-- ``method = "quantile"``: the empirical ``quantile`` of the history.
+- **the false-hold budget** (``[budget] false_holds_per_1000`` in the policy): every blocking
+  check that learns gets an equal share of the budget (a Bonferroni split: the chance that any
+  of ``m`` checks holds a healthy push is at most the sum of their levels), and its limit is
+  the one-sided tail at that level of a robust fit of its history (median and Qn, widened to a
+  prediction bound for the uncertainty of the fit itself; :func:`service.stats.robust.tail_limit`)
+  on the scale where the statistic is close to normal: the logarithm for non-negative
+  statistics such as PSI or KS D, ``log(1 - x)`` for correlations and overlaps near 1;
+- **an ``adaptive`` table** on the check (``method = "robust-z"``: median + ``k`` robust sigmas,
+  the Hampel identifier; ``method = "quantile"``: the empirical quantile), as before.
 
-For a check flagged below its limit (a higher-is-better metric, a list overlap) the mirror
-image is used: ``median - k * sigma`` or the ``1 - quantile`` level. ``min_limit`` and
-``max_limit`` bound the learned limit. The history is each earlier snapshot's value of the same
-check, which (since a promoted snapshot becomes the baseline) is the statistic between
-consecutive promoted snapshots; which entries count is set out in :mod:`service.gate.history`.
+After the check has judged the candidate with its static limit, :func:`apply_adaptive` replaces
+that limit by the learned one (bounded by ``min_limit``/``max_limit``) and judges again. For a
+check flagged below its limit the mirror image is used. The history is each earlier snapshot's
+value of the same check, which (since a promoted snapshot becomes the baseline) is the
+statistic between consecutive promoted snapshots; which entries count is set out in
+:mod:`service.gate.history`.
 
-With fewer than ``min_history`` counting values the static limit stands and the finding says
-so. A breach that the static check found for another reason than its limit (a metric below its
-floor, say) stays a breach. A check with ``alpha`` keeps requiring significance.
+**Warm-up.** With fewer than ``min_history`` counting values (or a history with no spread at
+all) no limit is learned: the check's stated static limit and its statistical tests stand, and
+the finding says so. A breach that the static check found for another reason than its limit (a
+metric below its floor, a segment over its limit) stays a breach. A check with ``alpha`` keeps
+requiring significance.
+
+Checks that judge several units (``quality`` per segment) learn per unit through
+:func:`learn_limit` themselves, with keys ``<check>[<unit>]`` filled from
+``Finding.details["learn"]`` (see :func:`service.gate.history.history_values`).
+
+References
+----------
+1. Hampel, F. R. (1974). The influence curve and its role in robust estimation. JASA 69(346).
+2. Rousseeuw, P. J. and Croux, C. (1993). Alternatives to the median absolute deviation. JASA
+   88(424), 1273–1283.
+3. Bonferroni, C. E. (1936); in modern form: Dunn, O. J. (1961). Multiple comparisons among
+   means. JASA 56(293), 52–64. (Splitting a level across tests bounds the chance of any false
+   rejection by the sum of the parts.)
 """
 
 from __future__ import annotations
@@ -36,6 +57,45 @@ from service.gate.types import Finding, HistoryEntry
 from service.stats import robust
 
 Side = Literal["upper", "lower"]
+Transform = Literal["none", "log", "log1m"]
+Method = Literal["budget", "robust-z", "quantile"]
+
+
+class BudgetRules(BaseModel):
+    """The ``[budget]`` section: how many healthy pushes in 1,000 the policy accepts to hold."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    false_holds_per_1000: float = Field(
+        gt=0,
+        le=100,
+        description="Healthy pushes in 1,000 the learned limits may hold, split equally across "
+        "the blocking checks that learn.",
+    )
+    min_history: int = Field(
+        20,
+        ge=3,
+        le=10000,
+        description="Warm-up: with fewer healthy values a check keeps its stated static limit.",
+    )
+    window: int = Field(
+        100, ge=3, le=2000, description="Learn from the newest this many healthy promotions."
+    )
+    window_hours: float | None = Field(
+        None, gt=0, description="Also ignore history older than this many hours."
+    )
+    include_overridden: bool = Field(
+        False, description="Let snapshots promoted by overriding a hold count as healthy."
+    )
+
+    def model_post_init(self, context: Any, /) -> None:
+        if self.min_history > self.window:
+            raise ValueError("min_history must not exceed window")
+
+    @property
+    def level(self) -> float:
+        """The budget as a probability per push."""
+        return self.false_holds_per_1000 / 1000.0
 
 
 class AdaptiveRules(BaseModel):
@@ -43,14 +103,17 @@ class AdaptiveRules(BaseModel):
 
     model_config = ConfigDict(extra="forbid", frozen=True)
 
-    method: Literal["robust-z", "quantile"] = Field(
-        "robust-z",
-        description="robust-z (median + k robust sigmas) or quantile (empirical).",
+    method: Method | None = Field(
+        None,
+        description="budget (the tail of a robust fit at the check's share of the policy's "
+        "false-hold budget), robust-z (median + k robust sigmas) or quantile (empirical); "
+        "default: budget when the policy has a [budget], else robust-z.",
     )
-    transform: Literal["none", "log"] = Field(
-        "none",
-        description="log: learn on the logarithm (for positive, right-skewed statistics "
-        "such as PSI or KS D); none: on the values as they are.",
+    transform: Transform | None = Field(
+        None,
+        description="log: learn on the logarithm (positive, right-skewed statistics such as "
+        "PSI or KS D); log1m: on log(1 - x) (correlations and overlaps near 1); none: on the "
+        "values as they are. Default: the check's own scale with method budget, else none.",
     )
     k: float = Field(
         3.5, gt=0, le=100, description="Robust sigmas above the median (method robust-z)."
@@ -58,14 +121,22 @@ class AdaptiveRules(BaseModel):
     quantile: float = Field(
         0.99, ge=0.5, le=1.0, description="Empirical quantile level (method quantile)."
     )
-    window: int = Field(
-        50, ge=3, le=10000, description="Use the newest this many healthy promotions."
+    window: int | None = Field(
+        None,
+        ge=3,
+        le=10000,
+        description="Use the newest this many healthy promotions (default: [budget] window, "
+        "else 50).",
     )
     window_hours: float | None = Field(
         None, gt=0, description="Also ignore history older than this many hours."
     )
-    min_history: int = Field(
-        20, ge=3, le=10000, description="Fewer healthy values than this: keep the static limit."
+    min_history: int | None = Field(
+        None,
+        ge=3,
+        le=10000,
+        description="Fewer healthy values than this: keep the static limit (default: [budget] "
+        "min_history, else 20).",
     )
     side: Side | None = Field(
         None,
@@ -79,7 +150,11 @@ class AdaptiveRules(BaseModel):
 
     def model_post_init(self, context: Any, /) -> None:
         """Cross-key rules, run once the keys themselves are valid."""
-        if self.min_history > self.window:
+        if (
+            self.min_history is not None
+            and self.window is not None
+            and self.min_history > self.window
+        ):
             raise ValueError("min_history must not exceed window")
         if (
             self.min_limit is not None
@@ -87,6 +162,70 @@ class AdaptiveRules(BaseModel):
             and self.min_limit > self.max_limit
         ):
             raise ValueError("min_limit must not exceed max_limit")
+
+
+@dataclasses.dataclass(frozen=True)
+class LearnPlan:
+    """Everything needed to learn one check's limit: its rules resolved against the policy's
+    budget. ``level`` is the check's share of the budget (method ``budget``), ``shared_by`` the
+    number of blocking checks that share it."""
+
+    method: Method
+    transform: Transform
+    side: Side
+    window: int
+    min_history: int
+    window_hours: float | None = None
+    include_overridden: bool = False
+    k: float = 3.5
+    quantile: float = 0.99
+    min_limit: float | None = None
+    max_limit: float | None = None
+    level: float | None = None
+    shared_by: int = 1
+    budget_per_1000: float | None = None
+    #: Usual push intervals between candidate and baseline (>= 1); see :func:`learn_limit`.
+    steps: float = 1.0
+
+    def at_level(self, level: float) -> LearnPlan:
+        """The same plan with the tail level split further (per unit of a check)."""
+        return dataclasses.replace(self, level=level)
+
+
+def make_plan(
+    rules: AdaptiveRules | None,
+    *,
+    budget: BudgetRules | None,
+    side: Side,
+    natural: Transform,
+    level: float | None,
+    shared_by: int,
+) -> LearnPlan:
+    """Resolve a check's ``adaptive`` table (None: all defaults) against the policy's budget."""
+    rules = rules or AdaptiveRules()
+    method: Method = rules.method or ("budget" if budget is not None else "robust-z")
+    if method == "budget" and (budget is None or level is None):
+        raise ValueError("method 'budget' needs a [budget] section in the policy")
+    transform = rules.transform or (natural if method == "budget" else "none")
+    window = rules.window or (budget.window if budget is not None else 50)
+    min_history = rules.min_history or (budget.min_history if budget is not None else 20)
+    return LearnPlan(
+        method=method,
+        transform=transform,
+        side=rules.side or side,
+        window=window,
+        min_history=min(min_history, window),
+        window_hours=rules.window_hours or (budget.window_hours if budget else None),
+        include_overridden=rules.include_overridden
+        or (budget.include_overridden if budget else False),
+        k=rules.k,
+        quantile=rules.quantile,
+        min_limit=rules.min_limit,
+        max_limit=rules.max_limit,
+        level=level if method == "budget" else None,
+        shared_by=shared_by,
+        budget_per_1000=budget.false_holds_per_1000 if budget is not None else None,
+    )
 
 
 @dataclasses.dataclass(frozen=True)
@@ -104,87 +243,176 @@ def _beyond(value: float, limit: float, side: Side) -> bool:
     return value > limit if side == "upper" else value < limit
 
 
+def _forward(value: float, transform: Transform) -> float | None:
+    """*value* on the learning scale, None where the scale has no place for it."""
+    if transform == "log":
+        return math.log(value) if value > 0 else None
+    if transform == "log1m":
+        return math.log(1.0 - value) if value < 1 else None
+    return value
+
+
+def _back(value: float, transform: Transform) -> float:
+    if transform == "log":
+        return math.exp(value)
+    if transform == "log1m":
+        return 1.0 - math.exp(value)
+    return value
+
+
+def _scale_side(side: Side, transform: Transform) -> Side:
+    """``log(1 - x)`` reverses the order: a low overlap is a high value on that scale."""
+    if transform == "log1m":
+        return "upper" if side == "lower" else "lower"
+    return side
+
+
+_SCALE_TEXT = {"none": "", "log": " of the logs", "log1m": " of log(1 - x)"}
+
+
+def _widen(median: float, limit: float, steps: float, transform: Transform, side: Side) -> float:
+    """A one-step limit for a candidate *steps* push intervals from its baseline.
+
+    Healthy change between snapshots accumulates like a random walk: a distance between
+    snapshots ``r`` steps apart grows as ``sqrt(r)`` and a variance-like quantity (``1 - rho``)
+    as ``r``. So on the log scale the limit moves by ``0.5 log r`` (log) or ``log r`` (log1m);
+    on the value scale its distance from the median grows by ``sqrt(r)``. A mean-reverting
+    model changes less than that, so the widening errs towards not holding healthy pushes after
+    a hold (which otherwise cascade: each held push leaves the next one further away).
+    Model assumption (Brownian scaling), no published source for its use here.
+    """
+    sign = 1.0 if side == "upper" else -1.0
+    if transform == "log":
+        return limit + sign * 0.5 * math.log(steps)
+    if transform == "log1m":
+        return limit + sign * math.log(steps)
+    return median + (limit - median) * math.sqrt(steps)
+
+
 def learn_limit(
-    rules: AdaptiveRules,
+    plan: LearnPlan | AdaptiveRules,
     *,
     check: str,
-    side: Side,
+    side: Side | None = None,
     history: Sequence[HistoryEntry],
     now: datetime,
 ) -> LearnedLimit:
-    """Learn check *check*'s limit from *history* under *rules*."""
-    log = rules.transform == "log"
+    """Learn the limit of history key *check* (a check name, or ``<check>[<unit>]``)."""
+    if isinstance(plan, AdaptiveRules):  # an adaptive table on its own (no policy budget)
+        plan = make_plan(
+            plan, budget=None, side=side or "upper", natural="none", level=None, shared_by=1
+        )
+    transform = plan.transform
 
     def value_of(entry: HistoryEntry) -> float | None:
         value = entry.values.get(check)
-        if value is None or (log and value <= 0):
-            return None  # on a log scale a non-positive value has no place
-        return math.log(value) if log else value
+        return None if value is None else _forward(value, transform)
 
     selection = select_history(
         history,
         value_of,
         now=now,
-        window=rules.window,
-        window_hours=rules.window_hours,
-        include_overridden=rules.include_overridden,
+        window=plan.window,
+        window_hours=plan.window_hours,
+        include_overridden=plan.include_overridden,
     )
     n = len(selection.values)
+    side = plan.side
     evidence: dict[str, Any] = {
-        "method": rules.method,
-        "transform": rules.transform,
+        "method": plan.method,
+        "transform": transform,
         "side": side,
         "history_used": n,
-        "history_needed": rules.min_history,
+        "history_needed": plan.min_history,
         "history_scanned": selection.scanned,
         "excluded": dict(selection.excluded),
-        "window": rules.window,
-        "window_hours": rules.window_hours,
+        "window": plan.window,
+        "window_hours": plan.window_hours,
     }
-    if n < rules.min_history:
-        text = (
-            f"only {n} healthy promotion(s) with a value (excluded: "
-            f"{selection.exclusion_text()}); {rules.min_history} needed to learn a limit"
+    if plan.level is not None:
+        evidence.update(
+            {
+                "level": plan.level,
+                "shared_by": plan.shared_by,
+                "budget_per_1000": plan.budget_per_1000,
+            }
         )
+    if n < plan.min_history:
+        text = (
+            f"warm-up: only {n} healthy promotion(s) with a value (excluded: "
+            f"{selection.exclusion_text()}); {plan.min_history} needed to learn a limit"
+        )
+        evidence["warm_up"] = True
         return LearnedLimit(None, side, n, text, evidence)
-    if rules.method == "robust-z":
+    evidence["warm_up"] = False
+    scale_side = _scale_side(side, transform)
+    if plan.method == "budget":
+        assert plan.level is not None
+        fit = robust.tail_limit(selection.values, level=plan.level, side=scale_side)
+        evidence.update(
+            {
+                "median": fit.median,
+                "scale": fit.scale,
+                "scale_source": fit.source,
+                "df": fit.df,
+                "multiplier": fit.multiplier,
+            }
+        )
+        if fit.limit is None:
+            evidence["warm_up"] = True
+            text = f"warm-up: the {n} healthy values have no spread, so no tail can be fitted"
+            return LearnedLimit(None, side, n, text, evidence)
+        fitted = fit.limit
+        if plan.steps > 1.0:
+            fitted = _widen(fit.median, fitted, plan.steps, transform, scale_side)
+            evidence["steps"] = plan.steps
+        limit = _back(fitted, transform)
+        text = (
+            f"tail 1 in {1.0 / plan.level:,.0f} of a robust fit (median {fit.median:.3g}, "
+            f"{fit.source} scale {fit.scale:.3g}{_SCALE_TEXT[transform]}) of {n} healthy "
+            f"promotions; the check's share of the budget of "
+            f"{plan.budget_per_1000:g} per 1,000 split over {plan.shared_by}"
+        )
+        if plan.steps > 1.0:
+            text += f"; widened for a candidate {plan.steps:.1f} push intervals from its baseline"
+    elif plan.method == "robust-z":
         spread = robust.robust_scale(selection.values)
-        sign = 1.0 if side == "upper" else -1.0
-        limit = spread.median + sign * rules.k * spread.scale
-        op = "+" if side == "upper" else "-"
-        if log:
-            limit = math.exp(limit)
+        sign = 1.0 if scale_side == "upper" else -1.0
+        limit = _back(spread.median + sign * plan.k * spread.scale, transform)
+        op = "+" if scale_side == "upper" else "-"
+        if transform == "log":
             text = (
-                f"exp(median log {spread.median:.3g} {op} {rules.k:g} x robust sigma "
+                f"exp(median log {spread.median:.3g} {op} {plan.k:g} x robust sigma "
                 f"{spread.scale:.3g} of the logs) over {n} healthy promotions"
             )
         else:
             text = (
-                f"median {spread.median:.3g} {op} {rules.k:g} x robust sigma {spread.scale:.3g} "
-                f"({spread.source}) over {n} healthy promotions"
+                f"median {spread.median:.3g} {op} {plan.k:g} x robust sigma {spread.scale:.3g} "
+                f"({spread.source}{_SCALE_TEXT[transform]}) over {n} healthy promotions"
             )
         evidence.update(
             {
                 "median": spread.median,
                 "scale": spread.scale,
                 "scale_source": spread.source,
-                "k": rules.k,
+                "k": plan.k,
             }
         )
     else:
-        limit = robust.quantile_limit(selection.values, q=rules.quantile, side=side)
-        if log:
-            limit = math.exp(limit)  # quantiles commute with a monotone transform
-        level = rules.quantile if side == "upper" else 1.0 - rules.quantile
+        # quantiles commute with a monotone transform
+        limit = _back(
+            robust.quantile_limit(selection.values, q=plan.quantile, side=scale_side), transform
+        )
+        level = plan.quantile if side == "upper" else 1.0 - plan.quantile
         text = f"{level:.3g} quantile over {n} healthy promotions"
         evidence.update({"quantile": level})
     raw = limit
-    if rules.min_limit is not None and limit < rules.min_limit:
-        limit = rules.min_limit
-        text += f", raised to min_limit {rules.min_limit:g}"
-    if rules.max_limit is not None and limit > rules.max_limit:
-        limit = rules.max_limit
-        text += f", lowered to max_limit {rules.max_limit:g}"
+    if plan.min_limit is not None and limit < plan.min_limit:
+        limit = plan.min_limit
+        text += f", raised to min_limit {plan.min_limit:g}"
+    if plan.max_limit is not None and limit > plan.max_limit:
+        limit = plan.max_limit
+        text += f", lowered to max_limit {plan.max_limit:g}"
     evidence.update(
         {"learned_limit": raw, "limit": limit, "excluded_text": selection.exclusion_text()}
     )
@@ -194,7 +422,7 @@ def learn_limit(
 def apply_adaptive(
     finding: Finding,
     *,
-    rules: AdaptiveRules,
+    rules: LearnPlan | AdaptiveRules,
     side: Side,
     alpha: float | None,
     history: Sequence[HistoryEntry],

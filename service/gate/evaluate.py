@@ -6,16 +6,19 @@ Order of work:
 2. lineage findings (watermark advance, known parent);
 3. each policy check, against the baseline or the reference as its ``against`` key says;
    a check whose other snapshot does not exist is ``skipped``; a check that raises gives a
-   blocking breach naming the error (fail closed); a check with an ``adaptive`` table is then
-   judged again against the limit learned from history (:mod:`service.gate.adaptive`);
+   blocking breach naming the error (fail closed); a check that learns (an ``adaptive`` table,
+   or any learning check under the policy's ``[budget]``) is then judged again against the
+   limit learned from history (:mod:`service.gate.adaptive`);
 4. the stuck finding: after ``history.stuck_after_holds`` holds in a row, an advisory finding
    (it never holds by itself: holding because earlier snapshots were held would never end);
 5. the decision: ``hold`` when a blocking finding is a breach, when a blocking finding is
-   inconclusive and the policy says ``on_inconclusive = "hold"``, or when this is the model's
-   first snapshot and the policy says ``first_snapshot = "hold"``; else ``promote``.
+   inconclusive and the policy says ``on_inconclusive = "hold"``, when a blocking finding is
+   underpowered and the policy says ``on_underpowered = "hold"`` (by default it does not hold:
+   a unit too small to decide against its margin is no evidence of harm), or when this is the
+   model's first snapshot and the policy says ``first_snapshot = "hold"``; else ``promote``.
 
 Reasons are ordered by severity: evaluation errors, health, lineage, other breaches (in policy
-order), then inconclusive findings.
+order), then inconclusive, then underpowered findings.
 """
 
 from __future__ import annotations
@@ -69,15 +72,16 @@ def _run_check(config: CheckConfig, inp: GateInput, policy: Policy) -> list[Find
                 details={"error": f"{type(exc).__name__}: {exc}"},
             )
         ]
-    if config.adaptive is not None:
-        rules = config.adaptive
-        side = config.adaptive_side()
+    plan = policy.learn_plan(config) if config.learning() == "value" else None
+    if plan is not None:
+        if config.against == "baseline":
+            plan = dataclasses.replace(plan, steps=ctx.steps)
         alpha = getattr(config, "alpha", None)
         produced = [
             apply_adaptive(
                 f,
-                rules=rules,
-                side=side,
+                rules=plan,
+                side=plan.side,
                 alpha=alpha if isinstance(alpha, float) else None,
                 history=inp.history,
                 now=inp.now,
@@ -132,6 +136,8 @@ def _reasons(findings: Iterable[Finding], policy: Policy) -> list[str]:
             ranked.append((severity, order, f.message))
         elif f.outcome == "inconclusive" and policy.on_inconclusive == "hold":
             ranked.append((4, order, f"inconclusive: {f.message}"))
+        elif f.outcome == "underpowered" and policy.on_underpowered == "hold":
+            ranked.append((5, order, f"underpowered: {f.message}"))
     return [message for _, _, message in sorted(ranked)]
 
 
@@ -150,7 +156,7 @@ def evaluate(inp: GateInput, policy: Policy | None) -> Verdict:
             error=message,
         )
     findings: list[Finding] = []
-    findings.extend(health_findings(policy.sample, inp.candidate))
+    findings.extend(health_findings(policy.sample, inp.candidate, inp.baseline))
     if any(config.kind == "off-policy" for config in policy.checks):
         findings.extend(log_health_findings(inp.candidate))  # the exploration log's health
     findings.extend(lineage_findings(policy.lineage, inp))

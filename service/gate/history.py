@@ -22,9 +22,10 @@ A policy may set ``include_overridden = true`` to let overridden holds count aft
 from __future__ import annotations
 
 import math
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta
+from typing import Any
 
 from service.gate.types import HistoryEntry
 
@@ -86,6 +87,64 @@ def select_history(
         values.append(float(value))
         keys.append(entry.snapshot_key)
     return HistorySelection(tuple(values), tuple(keys), excluded, scanned)
+
+
+def learn_key(check: str, unit: str) -> str:
+    """History key of a per-unit learned value: ``<check>[<unit>]``."""
+    return f"{check}[{unit}]"
+
+
+def history_values(findings: Iterable[Mapping[str, Any]]) -> dict[str, float]:
+    """The numbers a stored verdict offers to learned limits, as :class:`HistoryEntry` values.
+
+    Each finding (as stored: its ``to_dict()``) gives its ``value`` under the check's name and
+    every entry of ``details["learn"]`` (a flat mapping of unit to number) under
+    :func:`learn_key`. Non-finite and non-numeric entries are left out.
+    """
+    values: dict[str, float] = {}
+    for f in findings:
+        if not isinstance(f, Mapping):
+            continue
+        check = f.get("check")
+        if not isinstance(check, str):
+            continue
+        value = f.get("value")
+        if isinstance(value, (int, float)) and math.isfinite(float(value)):
+            values[check] = float(value)
+        details = f.get("details")
+        learn = details.get("learn") if isinstance(details, Mapping) else None
+        if isinstance(learn, Mapping):
+            for unit, number in learn.items():
+                if isinstance(number, (int, float)) and math.isfinite(float(number)):
+                    values[learn_key(check, str(unit))] = float(number)
+    return values
+
+
+def steps_apart(
+    candidate_until: datetime | None,
+    baseline_until: datetime | None,
+    history: Sequence[HistoryEntry],
+) -> float:
+    """How many usual push intervals separate the candidate's watermark from the baseline's.
+
+    The usual interval is the median gap between the watermarks of consecutive earlier posts
+    (newest first in *history*, held or not). 1.0 when anything is unknown and never below 1:
+    a learned limit describes one promotion step, and after a hold the next candidate is judged
+    against an older baseline, so it is further away (see :mod:`service.gate.adaptive`).
+    """
+    if candidate_until is None or baseline_until is None:
+        return 1.0
+    marks = [e.trained_until for e in history if e.trained_until is not None]
+    gaps = [
+        (newer - older).total_seconds()
+        for newer, older in zip(marks, marks[1:], strict=False)
+        if newer > older
+    ]
+    if len(gaps) < 3:
+        return 1.0
+    usual = sorted(gaps)[len(gaps) // 2]
+    apart = (candidate_until - baseline_until).total_seconds()
+    return max(1.0, apart / usual) if usual > 0 else 1.0
 
 
 def consecutive_holds(history: Sequence[HistoryEntry]) -> int:

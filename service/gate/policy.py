@@ -17,12 +17,13 @@ import hashlib
 import tomllib
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
+from importlib import resources
 from pathlib import Path
 from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
-from service.gate.adaptive import AdaptiveRules
+from service.gate.adaptive import AdaptiveRules, BudgetRules, LearnPlan, make_plan
 from service.gate.checks import REGISTRY, CheckConfig
 
 
@@ -59,7 +60,17 @@ class SampleRules(BaseModel):
         0.0, ge=0.0, le=1.0, description="Largest allowed share of scores outside the range."
     )
     min_std: float = Field(
-        1e-6, ge=0.0, description="A score standard deviation at or below this is collapsed output."
+        1e-3,
+        ge=0.0,
+        description="A score standard deviation at or below this is collapsed output when "
+        "there is no baseline spread to compare with (a model's first snapshot).",
+    )
+    min_std_ratio: float = Field(
+        0.2,
+        ge=0.0,
+        lt=1.0,
+        description="A score standard deviation at or below this share of the baseline's is "
+        "collapsed output; 0 turns the relative rule off.",
     )
     max_mode_share: float = Field(
         0.5, gt=0.0, le=1.0, description="Largest allowed share of rows sharing one score value."
@@ -124,6 +135,11 @@ class PolicyBody(BaseModel):
     on_inconclusive: Literal["hold", "promote"] = Field(
         "hold", description="Decision when a blocking check is inconclusive."
     )
+    on_underpowered: Literal["hold", "promote"] = Field(
+        "promote",
+        description="Decision when a blocking check is underpowered (its sample is too small "
+        "to decide against its margin); promote by default.",
+    )
     promote_moves_baseline: bool = Field(
         True, description="A promote verdict makes the candidate the baseline."
     )
@@ -132,6 +148,9 @@ class PolicyBody(BaseModel):
     lineage: LineageRules = Field(default_factory=LineageRules)
     reference: ReferenceRules = Field(default_factory=ReferenceRules)
     history: HistoryRules = Field(default_factory=HistoryRules)
+    budget: BudgetRules | None = Field(
+        None, description="The false-hold budget that sets every learned limit (see [budget])."
+    )
     checks: list[dict[str, Any]] = Field(default_factory=list)
 
 
@@ -154,6 +173,45 @@ class Policy:
     checks: tuple[CheckConfig, ...]
     reference: ReferenceRules = ReferenceRules()
     history: HistoryRules = HistoryRules()
+    on_underpowered: str = "promote"
+    budget: BudgetRules | None = None
+
+    def budget_checks(self) -> tuple[str, ...]:
+        """Names of the blocking checks that share the false-hold budget: those that learn
+        under it (``learn = true``, a kind that learns, no adaptive table of another method)."""
+        if self.budget is None:
+            return ()
+        return tuple(
+            c.name
+            for c in self.checks
+            if c.blocking
+            and c.learn
+            and c.learning() != "none"
+            and (c.adaptive is None or c.adaptive.method in (None, "budget"))
+        )
+
+    def learn_plan(self, config: CheckConfig) -> LearnPlan | None:
+        """How *config* learns its limit under this policy, None when it keeps a static one.
+
+        With a ``[budget]``, each of the :meth:`budget_checks` gets the level
+        ``budget / m`` (a Bonferroni split over the ``m`` checks); a non-blocking check learns
+        at the same level but does not count towards ``m`` (it never holds).
+        """
+        if config.learning() == "none":
+            return None
+        if config.adaptive is None and (self.budget is None or not config.learn):
+            return None
+        sharing = self.budget_checks()
+        m = max(1, len(sharing))
+        level = self.budget.level / m if self.budget is not None else None
+        return make_plan(
+            config.adaptive,
+            budget=self.budget,
+            side=config.adaptive_side(),
+            natural=config.natural_transform(),
+            level=level,
+            shared_by=m,
+        )
 
     def history_depth(self) -> int:
         """How many recent verdicts the store should load as ``GateInput.history``.
@@ -162,8 +220,10 @@ class Policy:
         take room), at least ``stuck_after_holds`` and 50, at most 2000.
         """
         widest = 0
+        if self.budget is not None:
+            widest = self.budget.window
         for check in self.checks:
-            if check.adaptive is not None:
+            if check.adaptive is not None and check.adaptive.window is not None:
                 widest = max(widest, check.adaptive.window)
             window = getattr(check, "window", None)
             if isinstance(window, int):
@@ -230,6 +290,17 @@ def parse_policy(text: str, *, name: str, path: str = "") -> Policy:
             raise PolicyError(msg, file=file, check=label, key=key) from None
         if config.name in seen:
             raise PolicyError("check name used twice", file=file, check=label, key="name")
+        if (
+            config.adaptive is not None
+            and config.adaptive.method == "budget"
+            and body.budget is None
+        ):
+            raise PolicyError(
+                "method 'budget' needs a [budget] section in the policy",
+                file=file,
+                check=label,
+                key="adaptive.method",
+            )
         seen.add(config.name)
         checks.append(config)
     return Policy(
@@ -241,6 +312,8 @@ def parse_policy(text: str, *, name: str, path: str = "") -> Policy:
         description=body.description,
         first_snapshot=body.first_snapshot,
         on_inconclusive=body.on_inconclusive,
+        on_underpowered=body.on_underpowered,
+        budget=body.budget,
         promote_moves_baseline=body.promote_moves_baseline,
         seed=body.seed,
         sample=body.sample,
@@ -262,6 +335,26 @@ def load_policies(folder: Path) -> list[Policy]:
     return policies
 
 
+STARTER_NAME = "starter"
+
+
+def starter_policy() -> Policy:
+    """The starter policy packaged with tidegate (``service/gate/starter.toml``).
+
+    Used when no policy folder is configured: it matches every model, turns on every check
+    whose inputs a post may carry (a check whose inputs are absent is ``skipped`` with that
+    reason), learns its limits from the model's healthy history and spends a false-hold budget
+    of 1 per 1,000 pushes.
+    """
+    text = resources.files("service.gate").joinpath("starter.toml").read_text(encoding="utf-8")
+    return parse_policy(text, name=STARTER_NAME, path="(packaged) service/gate/starter.toml")
+
+
+def policies_for(folder: Path | None) -> list[Policy]:
+    """The policies of *folder*, or the :func:`starter_policy` alone when no folder is set."""
+    return [starter_policy()] if folder is None else load_policies(folder)
+
+
 def select_policy(policies: Iterable[Policy], model: str) -> Policy | None:
     """The policy for *model* by the matching rule in the module docstring, or None."""
     best: tuple[tuple[int, int], int, Policy] | None = None
@@ -280,8 +373,9 @@ def describe_keys() -> Mapping[str, Mapping[str, str]]:
         "top": {
             name: field.description or ""
             for name, field in PolicyBody.model_fields.items()
-            if name not in {"sample", "lineage", "reference", "history", "checks"}
+            if name not in {"sample", "lineage", "reference", "history", "checks", "budget"}
         },
+        "budget": {n: f.description or "" for n, f in BudgetRules.model_fields.items()},
         "sample": {n: f.description or "" for n, f in SampleRules.model_fields.items()},
         "lineage": {n: f.description or "" for n, f in LineageRules.model_fields.items()},
         "reference": {n: f.description or "" for n, f in ReferenceRules.model_fields.items()},

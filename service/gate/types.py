@@ -22,10 +22,17 @@ import numpy as np
 from service.stats.offpolicy import LOG_COLUMNS as LOG_COLUMNS
 from service.stats.offpolicy import MODEL_COLUMNS as MODEL_COLUMNS
 
-Outcome = Literal["ok", "breach", "advisory", "inconclusive", "skipped"]
+Outcome = Literal["ok", "breach", "advisory", "inconclusive", "underpowered", "skipped"]
 Decision = Literal["promote", "hold"]
 
-OUTCOMES: tuple[Outcome, ...] = ("ok", "breach", "advisory", "inconclusive", "skipped")
+OUTCOMES: tuple[Outcome, ...] = (
+    "ok",
+    "breach",
+    "advisory",
+    "inconclusive",
+    "underpowered",
+    "skipped",
+)
 DECISIONS: tuple[Decision, ...] = ("promote", "hold")
 
 #: Columns with a fixed meaning; any other column must be named ``segment.<name>``.
@@ -189,6 +196,10 @@ class GateInput:
     #: Stored snapshot keys of the model among those the gate needs (the candidate's parent),
     #: None when not loaded.
     known_keys: frozenset[str] | None = None
+    #: The newest watermark (``trained_until``) of any earlier snapshot of the model, held or
+    #: promoted, None when none had one or it was not loaded. Lineage compares with it, so a
+    #: held snapshot's watermark still bars a replayed (older) job.
+    newest_watermark: datetime | None = None
 
 
 @dataclass(frozen=True)

@@ -13,6 +13,12 @@ hampel_limit
     The Hampel identifier's bound: median plus or minus ``k`` robust standard deviations.
 quantile_limit
     An empirical quantile of the history.
+qn_scale
+    Rousseeuw and Croux's Qn: a robust scale with 50 % breakdown and 82 % Gaussian efficiency.
+tail_limit
+    A one-sided limit at a stated tail level from a robust fit (median, Qn) of a history, widened
+    for the uncertainty of the fit itself (a prediction bound): the learned limits of the
+    false-hold budget.
 
 References
 ----------
@@ -29,6 +35,16 @@ References
    is ``sigma * sqrt(2 / pi)``, so ``sqrt(pi / 2) = 1.2533`` rescales it to ``sigma``.)
 5. Hyndman, R. J. and Fan, Y. (1996). Sample quantiles in statistical packages. The American
    Statistician 50(4), 361–365. (Definition 7, numpy's default ``linear`` method.)
+6. Croux, C. and Rousseeuw, P. J. (1992). Time-efficient algorithms for two highly robust
+   estimators of scale. Computational Statistics 1, 411–428. (Qn's small-sample correction
+   factors ``d_n``, the same as statsmodels' ``qn_scale``.)
+7. Hahn, G. J. and Meeker, W. Q. (1991). Statistical Intervals. Wiley, section 4.7. (The
+   one-sided normal prediction bound ``mean + t_{1-a, n-1} * s * sqrt(1 + 1/n)`` for one new
+   value.)
+8. Satterthwaite, F. E. (1946). An approximate distribution of estimates of variance
+   components. Biometrics Bulletin 2(6), 110–114. (A scale estimate is treated as a chi
+   variable with "equivalent" degrees of freedom; for an estimator of asymptotic efficiency
+   ``e`` relative to the standard deviation, ``e * (n - 1)``.)
 """
 
 from __future__ import annotations
@@ -39,6 +55,7 @@ from typing import Literal
 
 import numpy as np
 from scipy import special
+from scipy import stats as sps
 
 from service.stats.validation import finite_1d
 
@@ -233,3 +250,133 @@ def quantile_limit(history: object, *, q: float, side: Side = "upper") -> float:
     x = finite_1d(history, "history")
     level = q if side == "upper" else 1.0 - q
     return float(np.quantile(x, level))
+
+
+#: ``1 / (sqrt(2) * Phi^-1(5/8))``: makes Qn estimate a normal standard deviation [3].
+QN_TO_SIGMA = float(1.0 / (math.sqrt(2.0) * sps.norm.ppf(5.0 / 8.0)))
+#: Small-sample factors ``d_n`` of Qn for n = 2..9 [6]; above 9, ``n / (n + 1.4)`` (odd n) or
+#: ``n / (n + 3.8)`` (even n).
+_QN_SMALL = (0.399, 0.994, 0.512, 0.844, 0.611, 0.857, 0.669, 0.872)
+#: Asymptotic Gaussian efficiency of Qn [3], Table 1 (0.8227); of the MAD, 0.3675.
+QN_EFFICIENCY = 0.8227
+MAD_EFFICIENCY = 0.3675
+#: Variance of the sample median of a normal sample is about ``(pi / 2) sigma^2 / n``.
+_MEDIAN_VARIANCE = math.pi / 2.0
+
+
+def qn_scale(values: object) -> float:
+    """Rousseeuw and Croux's Qn scale estimate, consistent for a normal standard deviation [3].
+
+    Parameters
+    ----------
+    values : array_like
+        Finite values, at least two.
+
+    Returns
+    -------
+    float
+        ``d_n * 2.2219 * {|x_i - x_j|; i < j}_(k)`` with ``k = C(h, 2)``, ``h = n // 2 + 1``:
+        the k-th smallest pairwise distance, times the consistency constant and the
+        small-sample factor of [6]. Equals ``statsmodels.robust.scale.qn_scale`` (which leaves
+        the factor out) times ``d_n``.
+
+    Notes
+    -----
+    Computed from all ``n (n - 1) / 2`` pairwise distances (``O(n^2)`` memory); the gate uses
+    it on histories of at most a few thousand values. Like the MAD it ignores up to half the
+    values being outliers, but it is far more efficient for normal data (82 % against 37 %),
+    so a limit learned from 20 healthy values is much less noisy [3].
+
+    Examples
+    --------
+    >>> round(qn_scale([1.0, 2.0, 3.0, 4.0, 5.0, 6.0, 7.0, 8.0, 9.0, 10.0]), 4)
+    3.2162
+    """
+    x = finite_1d(values, "values", min_size=2)
+    n = x.size
+    h = n // 2 + 1
+    k = h * (h - 1) // 2
+    upper = np.triu_indices(n, 1)
+    distances = np.abs(x[upper[0]] - x[upper[1]])
+    kth = float(np.partition(distances, k - 1)[k - 1])
+    if n <= 9:
+        factor = _QN_SMALL[n - 2]
+    elif n % 2:
+        factor = n / (n + 1.4)
+    else:
+        factor = n / (n + 3.8)
+    return factor * QN_TO_SIGMA * kth
+
+
+@dataclass(frozen=True)
+class TailFit:
+    """A one-sided limit at tail *level* from a robust fit of a history (see :func:`tail_limit`).
+
+    ``limit`` is None when the history has no spread at all (every value equal): no tail can be
+    fitted to it, and the caller keeps its static limit.
+    """
+
+    limit: float | None
+    median: float
+    scale: float
+    source: Literal["qn", "mad", "meanad", "none"]
+    n: int
+    level: float
+    df: float
+    multiplier: float
+    side: Side
+
+
+def tail_limit(history: object, *, level: float, side: Side = "upper") -> TailFit:
+    """A limit that a new value from the same distribution as *history* exceeds with
+    probability *level* (one-sided), from a robust fit [3, 7, 8].
+
+    Parameters
+    ----------
+    history : array_like
+        Earlier values (already on the scale where they are close to normal, e.g. logarithms
+        of a PSI), at least three, finite.
+    level : float
+        One-sided tail probability in (0, 0.5), e.g. a check's share of the false-hold budget.
+    side : {"upper", "lower"}, default "upper"
+
+    Returns
+    -------
+    TailFit
+        ``median +/- t_{1-level, df} * scale * sqrt(1 + (pi/2) / n)``, where ``scale`` is
+        :func:`qn_scale` (falling back to the scaled MAD, then the scaled mean absolute
+        deviation, when more than half the pairwise distances are zero) and ``df = e * (n - 1)``
+        with ``e`` the estimator's Gaussian efficiency [8].
+
+    Notes
+    -----
+    This is the normal prediction bound for one new value [7] with its two ingredients made
+    robust: the median for the mean (whose variance ``(pi / 2) sigma^2 / n`` replaces
+    ``sigma^2 / n``) and Qn for the standard deviation (whose efficiency sets the degrees of
+    freedom of the t quantile, a Satterthwaite-style approximation [8]). With few values the t
+    quantile is wide, so a short history cannot produce a limit tighter than it can support;
+    the simulated exceedance rate for normal histories of 20 to 200 values is close to *level*
+    (tests/stats/test_robust_stats.py). A few outliers in the history (faults that slipped
+    through) move neither the median nor Qn much.
+    """
+    if not (isinstance(level, (int, float)) and 0.0 < level < 0.5):
+        raise ValueError(f"level must be a number in (0, 0.5), got {level!r}")
+    if side not in ("upper", "lower"):
+        raise ValueError(f"side must be 'upper' or 'lower', got {side!r}")
+    x = finite_1d(history, "history", min_size=3)
+    n = x.size
+    median = float(np.median(x))
+    scale = qn_scale(x)
+    source: Literal["qn", "mad", "meanad", "none"] = "qn"
+    efficiency = QN_EFFICIENCY
+    if scale <= 0:
+        spread = robust_scale(x)
+        scale, source = spread.scale, spread.source
+        efficiency = MAD_EFFICIENCY
+    df = max(1.0, efficiency * (n - 1))
+    multiplier = float(sps.t.ppf(1.0 - level, df)) * math.sqrt(1.0 + _MEDIAN_VARIANCE / n)
+    if scale <= 0:
+        return TailFit(None, median, 0.0, "none", n, float(level), df, multiplier, side)
+    sign = 1.0 if side == "upper" else -1.0
+    limit = median + sign * multiplier * scale
+    return TailFit(limit, median, scale, source, n, float(level), df, multiplier, side)

@@ -25,6 +25,7 @@ from typing import Any, cast
 from sqlalchemy import Table, insert, select
 from sqlalchemy.orm import Session
 
+from service.gate.history import learn_key
 from service.store.tables import FindingValueRow
 
 #: The table itself: reads select its columns directly (Core rows, no ORM loading), which is
@@ -112,23 +113,34 @@ _ORDER = (VALUES.c.verdict_id, VALUES.c.id)
 def values_by_verdict(
     session: Session, *, model_id: int, verdict_ids: Sequence[int]
 ) -> dict[int, dict[str, float]]:
-    """verdict id -> {check name: value} for the findings that reported a value (what
-    ``HistoryEntry.values`` holds). A later finding of the same check wins, as it did when
+    """verdict id -> {check name: value, learn_key(check, unit): number} (what
+    ``HistoryEntry.values`` holds, as service.gate.history.history_values builds it from
+    findings). A later finding of the same check wins, as it did when
     the findings were decoded in order."""
     out: dict[int, dict[str, float]] = {vid: {} for vid in verdict_ids}
     if not verdict_ids:
         return out
     stmt = (
-        select(VALUES.c.verdict_id, VALUES.c.check_name, VALUES.c.value)
-        .where(_range(model_id, verdict_ids), VALUES.c.value.is_not(None))
+        select(VALUES.c.verdict_id, VALUES.c.check_name, VALUES.c.value, VALUES.c.learn)
+        .where(
+            _range(model_id, verdict_ids),
+            VALUES.c.value.is_not(None) | VALUES.c.learn.is_not(None),
+        )
         .order_by(*_ORDER)
     )
     current, found = None, None
-    for verdict_id, check, value in session.execute(stmt).all():
+    for verdict_id, check, value, learn in session.execute(stmt).all():
         if verdict_id != current:
             current, found = verdict_id, out.get(verdict_id)
-        if found is not None:
+        if found is None:
+            continue
+        if value is not None:
             found[check] = value
+        # the gate's convention (service.gate.history.history_values): learn entries under
+        # learn_key(check, unit)
+        for unit, number in (learn or {}).items():
+            if isinstance(number, (int, float)):
+                found[learn_key(check, str(unit))] = float(number)
     return out
 
 

@@ -415,6 +415,42 @@ def promotion_as_of(session: Session, *, model_id: int, at: datetime) -> Promoti
     ).first()
 
 
+def newest_watermark(
+    session: Session, *, model_id: int, before_snapshot_id: int | None = None
+) -> datetime | None:
+    """The newest ``trained_until`` of the model's snapshots (held or not), among those stored
+    before snapshot *before_snapshot_id* when given; None when none has one."""
+    stmt = select(func.max(SnapshotRow.trained_until)).where(SnapshotRow.model_id == model_id)
+    if before_snapshot_id is not None:
+        stmt = stmt.where(SnapshotRow.id < before_snapshot_id)
+    return utc(session.scalar(stmt))
+
+
+def promoted_as_of_watermark(
+    session: Session, *, model_id: int, until: datetime
+) -> SnapshotRow | None:
+    """The snapshot with the newest watermark at or before *until* among those that became the
+    baseline and were not replaced by a rollback (SQL form of
+    :func:`service.gate.reference.baseline_as_of_watermark`)."""
+    rolled_back = select(PromotionRow.previous_id).where(
+        PromotionRow.model_id == model_id,
+        PromotionRow.cause == "rollback",
+        PromotionRow.previous_id.is_not(None),
+    )
+    return session.scalars(
+        select(SnapshotRow)
+        .join(PromotionRow, PromotionRow.snapshot_id == SnapshotRow.id)
+        .where(
+            PromotionRow.model_id == model_id,
+            SnapshotRow.trained_until.is_not(None),
+            SnapshotRow.trained_until <= until,
+            SnapshotRow.id.not_in(rolled_back),
+        )
+        .order_by(SnapshotRow.trained_until.desc(), PromotionRow.id.desc())
+        .limit(1)
+    ).first()
+
+
 def set_reference(session: Session, *, model: ModelRow, snapshot: SnapshotRow | None) -> None:
     """Pin *snapshot* as the model's reference (None: unpin)."""
     model.reference_id = snapshot.id if snapshot is not None else None

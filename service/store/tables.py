@@ -61,7 +61,11 @@ class SnapshotRow(Base):
     """One trained state of a model; its key is the trainer's own, unique per model."""
 
     __tablename__ = "snapshots"
-    __table_args__ = (UniqueConstraint("model_id", "key", name="uq_snapshots_model_key"),)
+    __table_args__ = (
+        UniqueConstraint("model_id", "key", name="uq_snapshots_model_key"),
+        # The newest watermark a model posted (lineage) and the reference by watermark.
+        Index("ix_snapshots_model_watermark", "model_id", "trained_until"),
+    )
 
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
     model_id: Mapped[int] = mapped_column(ForeignKey("models.id"), index=True)

@@ -297,7 +297,7 @@ def verdict_context(session: Session, *, verdict: VerdictRow, model: ModelRow) -
     findings = sorted(detail["findings"], key=lambda f: explain.ORDER.get(f["outcome"], 9))
     for f in findings:
         f["gauge"] = svg.limit_gauge(f.get("value"), f.get("limit"), f["outcome"])
-        if f.get("blocking", True) and f["outcome"] in {"breach", "inconclusive"}:
+        if f.get("blocking", True) and f["outcome"] in {"breach", "inconclusive", "underpowered"}:
             f["sureness"] = explain.assess(f)
     neighbours = {}
     for side in ("previous", "next"):

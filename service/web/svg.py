@@ -402,9 +402,12 @@ def limit_gauge(
     top = max(abs(value), abs(limit)) * 1.25
     xs = Scale(0.0, top, 1, width - 1)
     fill = xs(abs(value)) - 1
-    cls = {"breach": "tg-hold", "advisory": "tg-warn", "inconclusive": "tg-warn"}.get(
-        outcome, "tg-okfill"
-    )
+    cls = {
+        "breach": "tg-hold",
+        "advisory": "tg-warn",
+        "inconclusive": "tg-warn",
+        "underpowered": "tg-warn",
+    }.get(outcome, "tg-okfill")
     body = [
         f'<rect class="tg-track" x="1" y="3" width="{r(width - 2)}" height="{r(height - 6)}" '
         'rx="2"/>',

@@ -190,7 +190,9 @@ def test_log_transform_learns_on_the_log_scale() -> None:
 @pytest.mark.parametrize(
     ("extra", "match"),
     [
-        ('against = "reference"\n', "apply to checks against the baseline only"),
+        # Reference checks may learn now (the normal distance to a lagged reference is a
+        # statistic like any other); a budget method without a [budget] section may not.
+        ('[checks.adaptive]\nmethod = "budget"\n', r"needs a \[budget\] section"),
         ("[checks.adaptive]\nk = -1\n", "k"),
     ],
 )

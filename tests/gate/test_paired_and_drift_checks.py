@@ -200,13 +200,17 @@ def test_drift_segment_missing_on_the_other_side_is_reported() -> None:
 
 
 def test_adaptive_limits_side_and_refusal() -> None:
-    # Learned limits (the [checks.adaptive] table): a low rank correlation is the bad side;
-    # quality decides on an interval against a margin and refuses a learned limit.
+    # Learned limits (the [checks.adaptive] table): a low rank correlation is the bad side.
+    # Quality now learns its margin per unit (service/gate/checks/margins.py), so it accepts an
+    # adaptive table; baseline-age has a fixed limit and refuses one.
     spearman = policy('kind = "paired"\nstatistic = "spearman"\nmin = 0.5\n[checks.adaptive]\n')
     assert spearman.checks[0].adaptive_side() == "lower"  # type: ignore[attr-defined]
     churn = policy(
         'kind = "paired"\nstatistic = "churn"\nthreshold = 0.5\nmax = 0.1\n[checks.adaptive]\n'
     )
     assert churn.checks[0].adaptive_side() == "upper"  # type: ignore[attr-defined]
+    assert spearman.checks[0].natural_transform() == "log1m"  # type: ignore[attr-defined]
+    quality = policy('kind = "quality"\nmetric = "auc"\nmargin = 0.01\n[checks.adaptive]\n')
+    assert quality.checks[0].learning() == "own"
     with pytest.raises(PolicyError, match="drop 'adaptive'"):
-        policy('kind = "quality"\nmetric = "auc"\nmargin = 0.01\n[checks.adaptive]\n')
+        policy('kind = "baseline-age"\nmax_age_hours = 2\n[checks.adaptive]\n')

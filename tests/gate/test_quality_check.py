@@ -119,17 +119,26 @@ def test_clear_regression_is_a_breach_and_holds() -> None:
     assert "worse than the baseline by more than the margin" in f.message
 
 
-def test_small_sample_is_inconclusive_and_the_policy_decides() -> None:
+def test_small_sample_is_underpowered_and_the_policy_decides() -> None:
+    # 300 rows cannot decide against a margin of 0.005: the minimum detectable effect exceeds
+    # it, so the unit is underpowered (issue 9: not inconclusive), which does not hold unless
+    # the policy opts in with on_underpowered = "hold".
     cols = {k: v[:300] for k, v in paired_sample(4, candidate_noise=1.1).items()}
     f = judge(cols, policy(AUC_NI))
-    assert f.outcome == "inconclusive"
+    assert f.outcome == "underpowered"
     assert "detectable change" in f.message
+    assert f.details["mde"] > 0.005
     cand = Snapshot(model="m", key="c", sample=Sample(cols))
     base = Snapshot(model="m", key="b", sample=Sample({"score": cols["baseline_score"]}))
-    held = evaluate(GateInput(cand, base, NOW), policy(AUC_NI))  # type: ignore[arg-type]
-    passed = evaluate(GateInput(cand, base, NOW), policy(AUC_NI, on_inconclusive="promote"))  # type: ignore[arg-type]
-    assert held.decision == "hold" and any(r.startswith("inconclusive:") for r in held.reasons)
+    passed = evaluate(GateInput(cand, base, NOW), policy(AUC_NI))  # type: ignore[arg-type]
+    opted_in = parse_policy(
+        'models = ["*"]\non_underpowered = "hold"\n[sample]\nmin_rows = 10\n'
+        f'[[checks]]\nname = "q"\nkind = "quality"\n{AUC_NI}\n',
+        name="t",
+    )
+    held = evaluate(GateInput(cand, base, NOW), opted_in)
     assert passed.decision == "promote"
+    assert held.decision == "hold" and any(r.startswith("underpowered:") for r in held.reasons)
 
 
 def test_superiority_and_limit_rules() -> None:
@@ -173,7 +182,9 @@ def test_regression_in_one_segment_is_found_and_adjusted() -> None:
         "reader_tenure=returning",
     }
     assert table["device=web"]["outcome"] == "breach"
-    assert table["device=app"]["outcome"] in ("ok", "inconclusive")
+    # A unit whose interval straddles the margin while its MDE exceeds it is underpowered now
+    # (issue 9), not inconclusive.
+    assert table["device=app"]["outcome"] in ("ok", "inconclusive", "underpowered")
     assert f.outcome == "breach" and "device=web" in f.message
     # The adjusted p-values are Holm's over the five units (statsmodels multipletests).
     raw = [table[s]["p_worse"] for s in table]

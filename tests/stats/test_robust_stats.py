@@ -104,3 +104,77 @@ def test_quantile_limit_is_hyndman_fan_definition_7(q: float) -> None:
 def test_bad_input_is_named(call: object, match: str) -> None:
     with pytest.raises(ValueError, match=match):
         call()  # type: ignore[operator]
+
+
+def _qn_small_sample_factor(n: int) -> float:
+    # Croux & Rousseeuw (1992), Computational Statistics 1:411, the d_n of Qn: a table for
+    # n <= 9, n / (n + 1.4) for odd and n / (n + 3.8) for even n above 9.
+    table = {2: 0.399, 3: 0.994, 4: 0.512, 5: 0.844, 6: 0.611, 7: 0.857, 8: 0.669, 9: 0.872}
+    if n in table:
+        return table[n]
+    return n / (n + 1.4) if n % 2 else n / (n + 3.8)
+
+
+@pytest.mark.parametrize("n", [2, 3, 5, 9, 10, 11, 20, 51, 200])
+def test_qn_matches_statsmodels_times_the_small_sample_factor(n: int) -> None:
+    # Reference: statsmodels.robust.scale.qn_scale (Rousseeuw & Croux 1993's Qn with the
+    # consistency constant 2.2219 and no small-sample factor).
+    from statsmodels.robust.scale import qn_scale as reference
+
+    x = np.random.default_rng(n).standard_t(3, size=n)
+    expected = float(reference(x)) * _qn_small_sample_factor(n)
+    assert robust.qn_scale(x) == pytest.approx(expected, rel=1e-12)
+
+
+def test_qn_consistency_constant() -> None:
+    # Rousseeuw & Croux (1993): c = 1 / (sqrt(2) Phi^-1(5/8)) = 2.2219.
+    assert robust.QN_TO_SIGMA == pytest.approx(2.21914, abs=1e-5)
+
+
+def test_tail_limit_formula_against_scipy_and_statsmodels() -> None:
+    # The prediction bound of Hahn & Meeker (1991), section 4.7, with the median and Qn in place
+    # of the mean and standard deviation: median + t_{1-a, e(n-1)} * Qn * sqrt(1 + (pi/2)/n).
+    from statsmodels.robust.scale import qn_scale as reference
+
+    x = np.random.default_rng(11).normal(3.0, 0.5, size=40)
+    level = 1e-3
+    scale = float(reference(x)) * _qn_small_sample_factor(40)
+    df = 0.8227 * 39  # Rousseeuw & Croux (1993), Table 1: Gaussian efficiency of Qn 82.27 %
+    expected = np.median(x) + sps.t.ppf(1 - level, df) * scale * math.sqrt(1 + math.pi / 80)
+    fit = robust.tail_limit(x, level=level)
+    assert fit.source == "qn"
+    assert fit.limit == pytest.approx(expected, rel=1e-12)
+    low = robust.tail_limit(x, level=level, side="lower")
+    assert low.limit == pytest.approx(2 * np.median(x) - expected, rel=1e-12)
+
+
+@pytest.mark.parametrize("n", [20, 60])
+def test_tail_limit_exceedance_matches_its_level_by_simulation(n: int) -> None:
+    # Simulated: a new value from the history's own normal distribution exceeds the limit with
+    # probability close to the level (the point of a prediction bound; Hahn & Meeker 1991).
+    # 6,000 trials at level 0.02: binomial SE 0.18 %, so +-0.6 % is over 3 SE.
+    rng = np.random.default_rng(20261202 + n)
+    trials, level = 6000, 0.02
+    histories = rng.normal(size=(trials, n))
+    new = rng.normal(size=trials)
+    exceed = sum(
+        new[i] > robust.tail_limit(histories[i], level=level).limit  # type: ignore[operator]
+        for i in range(trials)
+    )
+    assert abs(exceed / trials - level) < 0.006
+    # The plain z bound with the same robust fit (no allowance for the fit's own noise) exceeds
+    # its level clearly at n = 20: why the t quantile is there.
+    if n == 20:
+        naive = sum(
+            new[i]
+            > np.median(histories[i]) + sps.norm.ppf(1 - level) * robust.qn_scale(histories[i])
+            for i in range(trials)
+        )
+        assert naive / trials > 1.3 * level
+
+
+def test_tail_limit_of_a_history_without_spread_is_none() -> None:
+    fit = robust.tail_limit([2.0] * 10, level=0.01)
+    assert fit.limit is None and fit.source == "none"
+    with pytest.raises(ValueError, match="level"):
+        robust.tail_limit([1.0, 2.0, 3.0], level=0.7)

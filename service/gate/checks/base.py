@@ -24,7 +24,8 @@ from typing import TYPE_CHECKING, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field
 
-from service.gate.adaptive import AdaptiveRules
+from service.gate.adaptive import AdaptiveRules, Transform
+from service.gate.history import steps_apart
 from service.gate.types import Finding, HistoryEntry, Snapshot
 
 if TYPE_CHECKING:
@@ -46,6 +47,11 @@ class CheckConfig(BaseModel):
     adaptive: AdaptiveRules | None = Field(
         None, description="Learn the limit from earlier healthy promotions (see adaptive keys)."
     )
+    learn: bool = Field(
+        True,
+        description="With a [budget] in the policy: learn this check's limit from healthy "
+        "history at its share of the budget; false keeps the stated static limit.",
+    )
 
     def model_post_init(self, context: Any, /) -> None:
         """Run the cross-key rules once the keys themselves are valid (pydantic reports a
@@ -55,11 +61,20 @@ class CheckConfig(BaseModel):
     def consistency(self) -> None:
         """Raise ValueError when keys contradict each other. A kind with rules of its own
         overrides this and calls ``super().consistency()`` first."""
-        if self.adaptive is not None and self.against != "baseline":
-            raise ValueError(
-                "adaptive limits are learned from consecutive promotions, so they apply to "
-                "checks against the baseline only; a reference check keeps its static limit"
-            )
+        if self.adaptive is not None and self.learning() == "none":
+            raise ValueError(f"check kind {self.kind!r} does not learn limits; drop 'adaptive'")
+
+    def learning(self) -> Literal["value", "own", "none"]:
+        """How this kind learns from history: ``value`` (the generic path: the finding's
+        ``value`` against a limit on :meth:`bad_side`, see :mod:`service.gate.adaptive`),
+        ``own`` (the check learns inside its run, e.g. per segment) or ``none``. A new kind
+        that reports a value on a bad side learns through the generic path without more code."""
+        return "value"
+
+    def natural_transform(self) -> Transform:
+        """The scale on which this check's values are close to normal, for learned limits:
+        ``log`` for non-negative statistics, ``log1m`` for correlations and overlaps near 1."""
+        return "none"
 
     def adaptive_side(self) -> Literal["upper", "lower"]:
         """Which way a value is bad, for a learned limit: the ``adaptive.side`` key, else the
@@ -93,6 +108,14 @@ class CheckContext:
     @property
     def seed(self) -> int:
         return self.policy.seed
+
+    @property
+    def steps(self) -> float:
+        """Usual push intervals between the candidate's and the baseline's watermarks (at least
+        1): a learned limit for one step widens for a candidate further away."""
+        if self.baseline is None:
+            return 1.0
+        return steps_apart(self.candidate.trained_until, self.baseline.trained_until, self.history)
 
 
 CheckFn = Callable[[Any, CheckContext], Sequence[Finding]]

@@ -22,9 +22,17 @@ from typing import Any, Literal
 import numpy as np
 from pydantic import Field, field_validator
 
+from service.gate.adaptive import Transform
 from service.gate.checks.base import CheckContext, format_p, register, skipped
 from service.gate.checks.memo import sorted_of
-from service.gate.checks.segments import ALL, CorrectedSegmentKeys, Unit, matching_rows, split
+from service.gate.checks.segments import (
+    ALL,
+    CorrectedSegmentKeys,
+    Unit,
+    expand,
+    matching_rows,
+    split,
+)
 from service.gate.types import Finding, Sample
 from service.stats import distance
 from service.stats import drift as drift_stats
@@ -61,6 +69,10 @@ class DriftConfig(CorrectedSegmentKeys):
             raise ValueError("set max (effect size), alpha (significance), or both")
         if self.alpha is not None and not DRIFT_STATISTICS[self.statistic].has_pvalue:
             raise ValueError(f"statistic {self.statistic!r} has no p-value: use max, not alpha")
+
+    def natural_transform(self) -> Transform:
+        """Every drift statistic is non-negative and right-skewed: learn on the logarithm."""
+        return "log"
 
 
 @dataclass(frozen=True)
@@ -184,9 +196,10 @@ def run_drift(config: DriftConfig, ctx: CheckContext) -> list[Finding]:
         return [skipped(config, f"no sample on the {config.against} or the candidate")]
     sample, other_sample = ctx.candidate.sample, other.sample
     minimum = max(config.bins, 2)
-    names = [n for n in config.segments if other_sample.column("segment." + n) is not None]
+    wanted = expand(config.segments, sample)
+    names = [n for n in wanted if other_sample.column("segment." + n) is not None]
     layout = split(sample, names, config.min_segment_rows)
-    missing = layout.missing_columns + [n for n in config.segments if n not in names]
+    missing = layout.missing_columns + [n for n in wanted if n not in names]
     results: list[tuple[Unit, np.ndarray, np.ndarray, DriftValue]] = []
     skipped_units: list[dict[str, Any]] = []
     for unit in layout.units:
@@ -194,12 +207,24 @@ def run_drift(config: DriftConfig, ctx: CheckContext) -> list[Finding]:
         base = _unit_scores(other_sample, unit, config.column, other=True)
         if cand.size < minimum or base.size < minimum:
             if unit.column is None:
+                # Inputs present but unusable: the data cannot resolve the question, which is
+                # what inconclusive means (skipped is for absent inputs). It holds under
+                # on_inconclusive = "hold" instead of letting the push through unchecked.
                 return [
-                    skipped(
-                        config,
-                        f"too few finite scores to compare ({cand.size} candidate, {base.size} "
-                        f"{config.against}; need {minimum})",
+                    Finding(
+                        check=config.name,
+                        kind=config.kind,
+                        outcome="inconclusive",
                         statistic=config.statistic,
+                        message=f"too few finite scores to compare ({cand.size} candidate, "
+                        f"{base.size} {config.against}; at least {minimum} on each side)",
+                        blocking=config.blocking,
+                        against=config.against,
+                        details={
+                            "finite_candidate": int(cand.size),
+                            "finite_other": int(base.size),
+                            "needed": minimum,
+                        },
                     )
                 ]
             skipped_units.append(
@@ -208,6 +233,7 @@ def run_drift(config: DriftConfig, ctx: CheckContext) -> list[Finding]:
                     "rows": int(cand.size),
                     "baseline_rows": int(base.size),
                     "outcome": "skipped",
+                    "error": f"too few finite scores (need {minimum} on each side)",
                 }
             )
             continue

@@ -1,7 +1,15 @@
 """Health: the candidate's own sample, judged alone. Always blocking (common practice).
 
-Finds non-finite scores, scores out of the allowed range, collapsed output (no spread),
-saturation (too many rows sharing one value) and too few rows.
+Finds non-finite scores, scores out of the allowed range, collapsed output, saturation (too
+many rows sharing one value) and too few rows.
+
+Collapse is judged against the baseline's spread when there is a baseline: a score standard
+deviation at or below ``min_std_ratio`` of the baseline's (its sample, or the stored summary once
+the sample is pruned) is collapsed, whatever the scale of the scores. The absolute floor
+``min_std`` applies when there is no baseline spread to compare with (the model's first
+snapshot, or a baseline without finite scores). An absolute floor alone
+cannot know the scale: 1e-4 is collapsed for probabilities spread over 0.15 but normal for a
+model whose scores all lie near 1e-3 (common practice, no source).
 """
 
 from __future__ import annotations
@@ -27,8 +35,62 @@ def _finding(check: str, breach: bool, message: str, **numbers: float | None) ->
     )
 
 
-def health_findings(rules: SampleRules, candidate: Snapshot) -> list[Finding]:
-    """Health findings for *candidate* under *rules*; no baseline needed."""
+def _spread(snapshot: Snapshot | None) -> float | None:
+    """Standard deviation of *snapshot*'s finite scores (sample, else stored summary)."""
+    if snapshot is None:
+        return None
+    if snapshot.sample is not None and len(snapshot.sample):
+        finite = snapshot.sample.score[np.isfinite(snapshot.sample.score)]
+        if finite.size == 0:
+            return None
+        with np.errstate(over="ignore", invalid="ignore"):
+            std = float(np.std(finite))
+        return std if np.isfinite(std) else None
+    if snapshot.summary is not None and snapshot.summary.std is not None:
+        return float(snapshot.summary.std)
+    return None
+
+
+def _collapse(rules: SampleRules, std: float, baseline: Snapshot | None) -> Finding:
+    base_std = _spread(baseline) if rules.min_std_ratio > 0 else None
+    if base_std is not None and base_std > 0.0:
+        limit = rules.min_std_ratio * base_std
+        ratio = std / base_std
+        bad = std <= limit
+        message = (
+            f"output collapsed: score standard deviation {std:.3g} is {ratio:.3g} of the "
+            f"baseline's {base_std:.3g}; at or below {rules.min_std_ratio:g} of the baseline's "
+            "is collapsed"
+            if bad
+            else f"score standard deviation {std:.4g}, {ratio:.3g} of the baseline's {base_std:.4g}"
+        )
+        return _finding(
+            "collapse",
+            bad,
+            message,
+            value=std,
+            limit=limit,
+            baseline_value=base_std,
+            candidate_value=std,
+        )
+    bad = std <= rules.min_std
+    return _finding(
+        "collapse",
+        bad,
+        f"output collapsed: score standard deviation {std:.3g} is at or below {rules.min_std:g}"
+        if bad
+        else f"score standard deviation {std:.4g} (absolute floor {rules.min_std:g}; no "
+        "baseline spread to compare with)",
+        value=std,
+        limit=rules.min_std,
+    )
+
+
+def health_findings(
+    rules: SampleRules, candidate: Snapshot, baseline: Snapshot | None = None
+) -> list[Finding]:
+    """Health findings for *candidate* under *rules*; *baseline* (when there is one) gives the
+    spread that collapse is judged against."""
     sample = candidate.sample
     if sample is None and not rules.required:
         return [
@@ -99,18 +161,7 @@ def health_findings(rules: SampleRules, candidate: Snapshot) -> list[Finding]:
         std = float(np.std(finite))
     if not np.isfinite(std):  # values near the float limit: the spread overflows, not collapsed
         std = float(np.finfo(np.float64).max)
-    bad = std <= rules.min_std
-    findings.append(
-        _finding(
-            "collapse",
-            bad,
-            f"output collapsed: score standard deviation {std:.3g} is at or below {rules.min_std:g}"
-            if bad
-            else f"score standard deviation {std:.4g}",
-            value=std,
-            limit=rules.min_std,
-        )
-    )
+    findings.append(_collapse(rules, std, baseline))
     # The most common value's count: the longest run of equal values in sorted order (the
     # score's sort order is shared with the checks that follow: AUC, PSI, KS, ...).
     ordered = sorted_with_order(finite)

@@ -64,6 +64,9 @@ class TrainingVolumeConfig(CheckConfig):
         if self.adaptive is not None:
             raise ValueError("training-volume learns from history already; drop 'adaptive'")
 
+    def learning(self) -> Literal["value", "own", "none"]:
+        return "own"
+
 
 @register("training-volume", TrainingVolumeConfig, family="history", needs_other=False)
 def run_training_volume(config: TrainingVolumeConfig, ctx: CheckContext) -> list[Finding]:
@@ -116,6 +119,9 @@ def run_training_volume(config: TrainingVolumeConfig, ctx: CheckContext) -> list
         return [
             finding("ok", f"rows_trained {rows} within the static bounds ({why})", details=details)
         ]
+    plan = ctx.policy.learn_plan(config)
+    if plan is not None and plan.level is not None:
+        return [_volume_by_budget(config, rows, selection.values, plan.level, static, details)]
     result = robust.robust_z(float(rows), selection.values)
     details.update({"median": result.median, "scale": result.scale, "scale_source": result.source})
     z = result.z
@@ -141,6 +147,57 @@ def run_training_volume(config: TrainingVolumeConfig, ctx: CheckContext) -> list
     ]
 
 
+def _volume_by_budget(
+    config: TrainingVolumeConfig,
+    rows: int,
+    history: tuple[float, ...],
+    level: float,
+    static: list[str],
+    details: dict[str, object],
+) -> Finding:
+    """rows_trained against limits at the check's share of the false-hold budget: the tails
+    of a robust fit (median, Qn) of log rows_trained (volumes vary by factors, so the log is
+    the natural scale), the level split over the flagged sides."""
+    logs = [math.log(v) for v in history if v > 0]
+    sides: list[Literal["upper", "lower"]] = (
+        ["upper", "lower"] if config.side == "both" else [config.side]
+    )
+    share = level / len(sides)
+    bounds: dict[str, float] = {}
+    if len(logs) >= 3:
+        for side in sides:
+            fit = robust.tail_limit(logs, level=share, side=side)
+            if fit.limit is not None:
+                bounds[side] = math.exp(fit.limit)
+    details.update({"level": level, "bounds": bounds, "history_values": len(logs)})
+    problems = list(static)
+    value = math.log(rows) if rows > 0 else -math.inf
+    if "upper" in bounds and rows > bounds["upper"]:
+        problems.append(f"rows_trained {rows} is above the learned limit {bounds['upper']:.0f}")
+    if "lower" in bounds and rows < bounds["lower"]:
+        problems.append(f"rows_trained {rows} is below the learned limit {bounds['lower']:.0f}")
+    shown = ", ".join(f"{side} {bound:.0f}" for side, bound in sorted(bounds.items()))
+    why = (
+        f"learned from {len(logs)} healthy promotions at 1 in {1 / share:,.0f} per side"
+        if bounds
+        else "the history has no spread; only the static bounds apply"
+    )
+    return Finding(
+        check=config.name,
+        kind=config.kind,
+        outcome="breach" if problems else "ok",
+        statistic="log_rows_trained",
+        value=value if math.isfinite(value) else None,
+        limit=math.log(bounds["upper"]) if "upper" in bounds else None,
+        message="; ".join(problems) + f" ({why})"
+        if problems
+        else f"rows_trained {rows} within the learned limits ({shown}; {why})",
+        blocking=config.blocking,
+        against=None,
+        details=details,
+    )
+
+
 class BaselineAgeConfig(CheckConfig):
     kind: Literal["baseline-age"]
     blocking: bool = Field(
@@ -158,6 +215,9 @@ class BaselineAgeConfig(CheckConfig):
             raise ValueError("baseline-age measures the baseline, not the reference")
         if self.adaptive is not None:
             raise ValueError("baseline-age has a fixed max_age_hours; drop 'adaptive'")
+
+    def learning(self) -> Literal["value", "own", "none"]:
+        return "none"
 
 
 @register("baseline-age", BaselineAgeConfig, family="history")

@@ -25,6 +25,7 @@ from typing import Literal
 
 from pydantic import Field
 
+from service.gate.adaptive import Transform
 from service.gate.checks.base import CheckConfig, CheckContext, register, skipped
 from service.gate.types import Finding, Snapshot
 from service.stats import lists as list_stats
@@ -97,6 +98,10 @@ class ListsConfig(CheckConfig):
 
     def bad_side(self) -> Literal["upper", "lower"]:
         return "lower" if self.statistic in OVERLAP_STATISTICS else "upper"
+
+    def natural_transform(self) -> Transform:
+        """Overlaps near 1 on log(1 - x); changes (either sign) as they are."""
+        return "log1m" if self.statistic in OVERLAP_STATISTICS else "none"
 
 
 def _lists_of(snapshot: Snapshot, k: int) -> dict[str, tuple[str, ...]] | None:

@@ -22,6 +22,7 @@ from typing import Any, Literal
 import numpy as np
 from pydantic import Field
 
+from service.gate.adaptive import Transform
 from service.gate.checks.base import CheckContext, register, skipped
 from service.gate.checks.memo import codes_of, finite_rows, order_of, take
 from service.gate.checks.segments import SegmentKeys, split, where
@@ -68,6 +69,10 @@ class PairedConfig(SegmentKeys):
     def bad_side(self) -> Literal["upper", "lower"]:
         """A low rank correlation is bad; a high change or churn is bad (learned limits)."""
         return "lower" if self.statistic == "spearman" else "upper"
+
+    def natural_transform(self) -> Transform:
+        """A correlation near 1 on log(1 - rho); a change or churn (non-negative) on the log."""
+        return "log1m" if self.statistic == "spearman" else "log"
 
 
 def _compute(

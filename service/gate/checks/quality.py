@@ -28,6 +28,7 @@ candidate's own value on all rows.
 
 from __future__ import annotations
 
+import dataclasses
 import zlib
 from dataclasses import dataclass
 from typing import Any, Literal
@@ -46,30 +47,33 @@ from service.gate.checks.comparisons import (
     compare_unpaired,
     is_ranking,
     label_of,
-    value_of,
 )
-from service.gate.checks.memo import codes_of, finite_rows, order_of, sorted_with_order, take
+from service.gate.checks.margins import (
+    GAIN_KEY,
+    UnitMargin,
+    leak_limit,
+    too_few_classes,
+    unit_margin,
+)
+from service.gate.checks.memo import codes_of, finite_rows, take
+from service.gate.checks.quality_units import bound_problems, floor_only, paired_auc_units
 from service.gate.checks.segments import (
     ALL,
     CorrectedSegmentKeys,
     Unit,
-    kept_codes,
     matching_rows,
     split,
     where,
 )
 from service.gate.types import Finding, Sample
-from service.stats.auc import AUCChange, delong_paired
-from service.stats.delong_segments import delong_paired_by_value
 from service.stats.inference import (
     BoundaryTest,
+    ChangeTest,
     against_boundary,
     minimum_detectable_effect,
-    normal_change,
     oriented_interval,
 )
 from service.stats.multiple import adjust
-from service.stats.parallel import both
 
 
 class QualityConfig(CorrectedSegmentKeys):
@@ -108,6 +112,21 @@ class QualityConfig(CorrectedSegmentKeys):
         "auto", description="auto: closed-form tests where they exist; bootstrap: always resample."
     )
     resamples: int = Field(1000, ge=10, le=100_000, description="Bootstrap resamples.")
+    warm_up_margin: float | None = Field(
+        None,
+        ge=0,
+        description="The margin while the check is still learning (fewer healthy values than "
+        "the budget's min_history); default: margin.",
+    )
+    min_positives: int = Field(
+        50,
+        ge=1,
+        description="auc, calibration_ratio, ece: a unit with fewer positive rows is "
+        "underpowered (DeLong's interval is overconfident with few positives).",
+    )
+    min_negatives: int = Field(
+        50, ge=1, description="auc, calibration_ratio, ece: the same for negative rows."
+    )
 
     def consistency(self) -> None:
         super().consistency()
@@ -115,11 +134,14 @@ class QualityConfig(CorrectedSegmentKeys):
             raise ValueError(f"rule {self.rule!r} needs a margin")
         if self.pairing == "paired" and self.against != "baseline":
             raise ValueError("pairing = 'paired' compares with the baseline (against = 'baseline')")
-        if self.adaptive is not None:
-            raise ValueError(
-                "quality decides on a confidence interval against its margin, not on a limit "
-                "learned from history; drop 'adaptive'"
-            )
+
+    def learning(self) -> Literal["value", "own", "none"]:
+        """Learns per unit inside its run (see :mod:`service.gate.checks.margins`)."""
+        return "own"
+
+    def bad_side(self) -> Literal["upper", "lower"]:
+        """The learned quantity is the oriented gain: bad when low."""
+        return "lower"
 
 
 @dataclass(frozen=True)
@@ -129,10 +151,13 @@ class UnitResult:
     comparison: Comparison | None
     tests: BoundaryTest | None
     error: str | None = None
+    #: Too few positives or negatives: reported as underpowered, not tested.
+    short: bool = False
 
 
-def _boundary(config: QualityConfig) -> float:
-    margin = config.margin or 0.0
+def _boundary(config: QualityConfig, margin: float | None = None) -> float:
+    """The boundary of the gain: ``-margin`` (non-inferiority, limit) or ``+margin``."""
+    margin = (config.margin or 0.0) if margin is None else margin
     return margin if config.rule == "superiority" else -margin
 
 
@@ -221,7 +246,7 @@ def run_quality(config: QualityConfig, ctx: CheckContext) -> list[Finding]:
     rows_used = len(sample) if keep is None else keep.size
     cand_all = _side(sample, keep, "score", config)
     if not paired and not usable_other:
-        return _floor_only(config, ctx, name, cand_all, opts)
+        return floor_only(config, ctx, name, cand_all, opts)
     layout = split(sample, config.segments, config.min_segment_rows, keep=keep)
     if paired:
         base_all = Side(
@@ -238,10 +263,22 @@ def run_quality(config: QualityConfig, ctx: CheckContext) -> list[Finding]:
     # Paired AUC: one sort per score serves all rows and every segment value.
     fast: dict[str, Comparison | str] = {}
     if paired and config.metric == "auc" and config.method == "auto":
-        fast = _paired_auc_units(sample, cand_all, base_all, layout.units, keep, opts, rows_used)
+        fast = paired_auc_units(sample, cand_all, base_all, layout.units, keep, opts, rows_used)
     results: list[UnitResult] = []
     for unit in layout.units:
         rows = rows_used if unit.rows is None else unit.rows.size
+        labels = cand_all.label if unit.rows is None else cand_all.label[unit.rows]
+        short = too_few_classes(
+            config.metric,
+            labels,
+            min_positives=config.min_positives,
+            min_negatives=config.min_negatives,
+        )
+        if short is not None:
+            if unit.label == ALL:
+                return [_underpowered_all(config, name, paired, short, rows_used)]
+            results.append(UnitResult(unit, rows, None, None, error=short, short=True))
+            continue
         try:
             if unit.label in fast:
                 known = fast[unit.label]
@@ -263,124 +300,110 @@ def run_quality(config: QualityConfig, ctx: CheckContext) -> list[Finding]:
                 raise
             results.append(UnitResult(unit, rows, None, None, error=str(exc)))
             continue
-        sign = DIRECTION[config.metric]
-        tests = against_boundary(comparison.test, _boundary(config), sign=sign)
-        results.append(UnitResult(unit, rows, comparison, tests))
+        results.append(UnitResult(unit, rows, comparison, None))
+    plan = ctx.policy.learn_plan(config)
+    if plan is not None and config.against == "baseline":
+        plan = dataclasses.replace(plan, steps=ctx.steps)
+    ran = [r for r in results if r.comparison is not None]
+    # The check's share of the budget is split over its units (and the leak guard): Bonferroni.
+    guards = 1 if plan is not None or config.max_gain is not None else 0
+    unit_plan = plan
+    if plan is not None and plan.level is not None:  # method budget: split the share over units
+        unit_plan = plan.at_level(plan.level / max(1, len(ran) + guards))
+    margins = {
+        r.unit.label: unit_margin(
+            check=config.name,
+            unit=r.unit.label,
+            rule=config.rule,
+            stated=config.margin or 0.0,
+            plan=unit_plan,
+            history=ctx.history,
+            now=ctx.now,
+            warm_up=config.warm_up_margin,
+        )
+        for r in ran
+    }
+    leak = leak_limit(
+        check=config.name,
+        stated=config.max_gain,
+        plan=unit_plan,
+        history=ctx.history,
+        now=ctx.now,
+    )
+    sign = DIRECTION[config.metric]
+    tested = [
+        dataclasses.replace(
+            r,
+            tests=against_boundary(
+                r.comparison.test,
+                _boundary(config, margins[r.unit.label].margin),
+                sign=sign,
+            ),
+        )
+        if r.comparison is not None
+        else r
+        for r in results
+    ]
     return [
         _finding(
             config,
             name,
             paired,
-            results,
+            tested,
             layout.too_small,
             layout.missing_columns,
             rows_used,
             len(sample),
+            margins,
+            leak,
         )
     ]
 
 
-def _has_ties(ordered: np.ndarray) -> bool:
-    """Whether two of the sorted values are equal."""
-    return bool(np.any(ordered[1:] == ordered[:-1]))
+def _underpowered_all(
+    config: QualityConfig, name: str, paired: bool, why: str, rows: int
+) -> Finding:
+    """All rows have too few positives or negatives: underpowered, with the counts."""
+    return Finding(
+        check=config.name,
+        kind=config.kind,
+        outcome="underpowered",
+        statistic=f"{config.metric} change",
+        message=f"{name} on all {rows} rows ({'paired' if paired else 'unpaired'}): {why}",
+        blocking=config.blocking,
+        against=config.against,
+        details={"rule": config.rule, "margin": config.margin, "rows_used": rows},
+    )
 
 
-def _paired_auc_units(
-    sample: Sample,
-    cand: Side,
-    base: Side,
-    units: list[Unit],
-    keep: np.ndarray | None,
-    opts: Options,
-    rows: int,
-) -> dict[str, Comparison | str]:
-    """Paired DeLong for every unit from one sort per score (see delong_segments)."""
-    order_c, order_b = both(lambda: order_of(cand.score), lambda: order_of(base.score), rows=rows)
-    # Ties from the sorted values the sort gave with the order (no second gather).
-    ties = (_has_ties(sorted_with_order(cand.score)), _has_ties(sorted_with_order(base.score)))
-    positive = cand.label > 0
-    found: dict[str, AUCChange | str] = {
-        ALL: delong_paired(
-            None, cand.score, base.score, positive=positive, orders=(order_c, order_b), ties=ties
-        )
-    }
-    for column in sorted({u.column for u in units if u.column is not None}):
-        codes, n_values = kept_codes(sample, column, keep)
-        per_value = delong_paired_by_value(
-            positive, cand.score, base.score, (order_c, order_b), codes, n_values, ties=ties
-        )
-        for unit in units:
-            if unit.column == column and unit.index is not None:
-                found[unit.label] = per_value[unit.index]
-    out: dict[str, Comparison | str] = {}
-    for label, result in found.items():
-        if isinstance(result, str):
-            out[label] = result
-            continue
-        n = result.n_positive + result.n_negative
-        test = normal_change(
-            result.difference,
-            result.se,
-            confidence=opts.confidence,
-            method=result.method,
-            n_candidate=n,
-            n_baseline=n,
-        )
-        out[label] = Comparison(result.candidate, result.baseline, test, "rows")
-    return out
-
-
-def _floor_only(
-    config: QualityConfig, ctx: CheckContext, name: str, cand: Side, opts: Options
-) -> list[Finding]:
-    """No baseline to compare with: judge the candidate's own value against floor/ceiling."""
-    if config.floor is None and config.ceiling is None:
-        return [
-            skipped(
-                config,
-                f"{name}: no baseline_score and no {config.against} sample with labels "
-                "to compare with",
-                statistic=config.metric,
-            )
-        ]
-    value = value_of(cand, opts)
-    problems = _bounds(config, name, value)
-    return [
-        Finding(
-            check=config.name,
-            kind=config.kind,
-            outcome="breach" if problems else "ok",
-            statistic=config.metric,
-            candidate_value=value,
-            limit=config.floor if config.floor is not None else config.ceiling,
-            message="; ".join(problems)
-            or f"{name} {value:.4g} within bounds (nothing to compare with)",
-            blocking=config.blocking,
-            against=config.against,
-            details={"rows": int(cand.score.size), "mode": "candidate only"},
-        )
-    ]
-
-
-def _bounds(config: QualityConfig, name: str, value: float) -> list[str]:
-    problems = []
-    if config.floor is not None and value < config.floor:
-        problems.append(f"{name} {value:.4g} is below the floor {config.floor:g}")
-    if config.ceiling is not None and value > config.ceiling:
-        problems.append(f"{name} {value:.4g} is above the ceiling {config.ceiling:g}")
-    return problems
-
-
-def _outcome(config: QualityConfig, gain: float, p_above: float, p_below: float) -> str:
+def _outcome(
+    config: QualityConfig,
+    test: ChangeTest,
+    gain: float,
+    p_above: float,
+    p_below: float,
+    margin: float,
+    leak: float | None,
+) -> str:
+    """One unit's verdict: leak, breach, ok, inconclusive or underpowered (module docstring
+    of :mod:`service.gate.checks.margins`)."""
     alpha = (1.0 - config.confidence) / 2.0
-    if config.max_gain is not None and gain > config.max_gain:
+    if leak is not None and gain > leak:
         return "leak"
     if config.rule == "limit":
-        return "breach" if gain < _boundary(config) else "ok"
+        return "breach" if gain < _boundary(config, margin) else "ok"
+    if test.se == 0:
+        # No change on any resample or component (the candidate scores the rows as the
+        # baseline does) is known exactly; any other change without a measured uncertainty
+        # is not certainty.
+        return _outcome_of_zero(config, gain, margin)
     if p_above < alpha:
         return "ok"
     if p_below < alpha:
         return "breach"
+    mde = minimum_detectable_effect(test.se, confidence=config.confidence, power=config.power)
+    if config.rule == "non-inferiority" and mde > margin:
+        return "underpowered"
     return "inconclusive"
 
 
@@ -393,6 +416,8 @@ def _finding(
     missing: list[str],
     rows_used: int,
     rows_total: int,
+    margins: dict[str, UnitMargin],
+    leak: tuple[float | None, str, dict[str, Any]],
 ) -> Finding:
     sign = DIRECTION[config.metric]
     ran = [r for r in results if r.comparison is not None and r.tests is not None]
@@ -401,15 +426,22 @@ def _finding(
     # (Berger 1982), so the raw p-values decide it.
     p_above = [r.tests.p_above for r in ran]  # type: ignore[union-attr]
     p_below = adjust([r.tests.p_below for r in ran], config.correction)  # type: ignore[union-attr]
+    leak_at, leak_why, leak_evidence = leak
     table: list[dict[str, Any]] = []
     verdicts: dict[str, str] = {}
+    learn: dict[str, float] = {}
     for r, pa, pb in zip(ran, p_above, p_below, strict=True):
         assert r.comparison is not None and r.tests is not None
         c = r.comparison
         low, high = oriented_interval(c.test, sign)
         gain = sign * c.test.estimate
-        verdict = _outcome(config, gain, float(pa), float(pb))
+        margin = margins[r.unit.label]
+        guard = leak_at if r.unit.label == ALL else None
+        verdict = _outcome(config, c.test, gain, float(pa), float(pb), margin.margin, guard)
         verdicts[r.unit.label] = verdict
+        learn[r.unit.label] = low if config.rule == "non-inferiority" else gain
+        if r.unit.label == ALL:
+            learn[GAIN_KEY] = gain
         table.append(
             {
                 "segment": r.unit.label,
@@ -424,25 +456,35 @@ def _finding(
                 "p_worse": r.tests.p_below,
                 "p_worse_adjusted": float(pb),
                 "gain_interval": [low, high],
-                "outcome": verdict if verdict != "leak" else "breach",
+                "mde": minimum_detectable_effect(
+                    c.test.se, confidence=config.confidence, power=config.power
+                ),
+                "margin": margin.margin,
+                "margin_source": margin.source,
+                "outcome": _shown(verdict),
             }
         )
     for r in results:
         if r.comparison is None:
             table.append(
-                {"segment": r.unit.label, "rows": r.rows, "outcome": "skipped", "error": r.error}
+                {
+                    "segment": r.unit.label,
+                    "rows": r.rows,
+                    "outcome": "underpowered" if r.short else "skipped",
+                    "error": r.error,
+                }
             )
+            if r.short:
+                verdicts[r.unit.label] = "underpowered"
     whole = ran[0]
     assert whole.unit.label == ALL and whole.comparison is not None and whole.tests is not None
     test = whole.comparison.test
     gain = sign * test.estimate
     mde = minimum_detectable_effect(test.se, confidence=config.confidence, power=config.power)
-    boundary = _boundary(config)
-    limit = sign * boundary  # the boundary in the metric's own units
-    problems = _bounds(config, name, whole.comparison.candidate_value)
-    leaks = [label for label, v in verdicts.items() if v == "leak"]
-    breaches = [label for label, v in verdicts.items() if v == "breach"]
-    unsure = [label for label, v in verdicts.items() if v == "inconclusive"]
+    used = margins[ALL]
+    limit = sign * _boundary(config, used.margin)  # the boundary in the metric's own units
+    problems = bound_problems(config, name, whole.comparison.candidate_value)
+    by = {kind: [lab for lab, v in verdicts.items() if v == kind] for kind in _VERDICTS}
     conf = f"{config.confidence:.0%}"
     low, high = test.interval
     what = "change" if config.metric != "calibration_ratio" else "change in distance from 1"
@@ -452,27 +494,47 @@ def _finding(
         f"{test.n_candidate} {whole.comparison.units}): {what} {_fmt(test.estimate)}, "
         f"{conf} CI [{_fmt(low)}, {_fmt(high)}]"
     )
-    if leaks:
+    margin_text = _margin_text(used)
+    if by["leak"]:
         outcome = "breach"
-        tail = f"gain above max_gain {config.max_gain:g}{where(leaks)}: a label may have leaked"
-    elif problems or breaches:
+        tail = f"gain above the leak limit {leak_at:.4g} ({leak_why}): a label may have leaked"
+    elif problems or by["breach"]:
         outcome = "breach"
         parts = list(problems)
-        if breaches:
-            parts.append(_breach_text(config, breaches))
+        if by["breach"]:
+            parts.append(_breach_text(config, by["breach"], margin_text))
         tail = "; ".join(parts)
-    elif unsure:
+    elif by["zero-se"] or by["inconclusive"]:
         outcome = "inconclusive"
+        parts = []
+        if by["zero-se"]:
+            parts.append(
+                f"standard error 0{where(by['zero-se'])}: the data cannot measure its "
+                "uncertainty, which is not certainty"
+            )
+        if by["inconclusive"]:
+            parts.append(
+                f"cannot tell against the {margin_text}{where(by['inconclusive'])}: the "
+                f"interval straddles it (detectable change at this size: {mde:.3g})"
+            )
+        tail = "; ".join(parts)
+    elif by["underpowered"]:
+        outcome = "underpowered"
         tail = (
-            f"cannot tell against the margin {config.margin or 0:g}{where(unsure)}: the "
-            f"interval straddles it (detectable change at this size: {mde:.3g})"
+            f"underpowered{where(by['underpowered'])}: too small to decide against the "
+            f"{margin_text} (detectable change on all rows: {mde:.3g}); see details.segments"
         )
     else:
         outcome = "ok"
-        tail = _ok_text(config)
+        tail = _ok_text(config, margin_text)
     details: dict[str, Any] = {
         "rule": config.rule,
         "margin": config.margin,
+        "margin_used": used.margin,
+        "margin_source": used.source,
+        "margin_why": used.description,
+        "learned_change": used.learned,
+        "learning": used.evidence,
         "confidence": config.confidence,
         "method": test.method,
         "mode": "paired" if paired else "unpaired",
@@ -487,9 +549,10 @@ def _finding(
         "segments": table if len(results) > 1 or too_small else [],
         "too_small": too_small,
         "missing_segment_columns": missing,
+        "learn": learn,
     }
-    if config.max_gain is not None:
-        details["max_gain"] = config.max_gain
+    if leak_at is not None:
+        details.update({"max_gain": leak_at, "leak_why": leak_why, "leak_learning": leak_evidence})
     return Finding(
         check=config.name,
         kind=config.kind,
@@ -508,21 +571,42 @@ def _finding(
     )
 
 
-def _breach_text(config: QualityConfig, units: list[str]) -> str:
+def _outcome_of_zero(config: QualityConfig, gain: float, margin: float) -> str:
+    if gain == 0.0:
+        return "ok" if config.rule != "superiority" or margin == 0.0 else "breach"
+    return "zero-se"
+
+
+_VERDICTS = ("leak", "breach", "zero-se", "inconclusive", "underpowered", "ok")
+
+
+def _shown(verdict: str) -> str:
+    return {"leak": "breach", "zero-se": "inconclusive"}.get(verdict, verdict)
+
+
+def _margin_text(margin: UnitMargin) -> str:
+    if margin.source == "learned":
+        return f"learned margin {margin.margin:.4g} (stated {margin.stated:g})"
+    if margin.source == "warm-up":
+        return f"warm-up margin {margin.margin:g} (still learning)"
+    return f"margin {margin.margin:g}"
+
+
+def _breach_text(config: QualityConfig, units: list[str], margin: str) -> str:
     place = where(units)
     if config.rule == "non-inferiority":
-        return f"worse than the {config.against} by more than the margin {config.margin:g}{place}"
+        return f"worse than the {config.against} by more than the {margin}{place}"
     if config.rule == "superiority":
         return f"shown not better than the {config.against} by {config.margin or 0:g}{place}"
-    return f"point estimate worse than the {config.against} by more than {config.margin:g}{place}"
+    return f"point estimate worse than the {config.against} by more than the {margin}{place}"
 
 
-def _ok_text(config: QualityConfig) -> str:
+def _ok_text(config: QualityConfig, margin: str) -> str:
     if config.rule == "non-inferiority":
-        return f"non-inferior within the margin {config.margin:g}"
+        return f"non-inferior within the {margin}"
     if config.rule == "superiority":
         return f"better than the {config.against} by more than {config.margin or 0:g}"
-    return f"within the limit {config.margin:g}"
+    return f"within the limit: {margin}"
 
 
 def _null_text(config: QualityConfig) -> str:

@@ -34,7 +34,8 @@ class SegmentKeys(CheckConfig):
 
     segments: list[str] = Field(
         default_factory=list,
-        description="Segment column names (without 'segment.') to also run the check per value of.",
+        description="Segment column names (without 'segment.') to also run the check per value "
+        "of; '*' stands for every segment column the sample carries.",
     )
     min_segment_rows: int = Field(
         1000, ge=1, description="Segment values with fewer rows are reported but not tested."
@@ -82,6 +83,21 @@ class Split:
     missing_columns: list[str]
 
 
+ANY = "*"
+
+
+def expand(names: list[str], sample: Sample) -> list[str]:
+    """*names* with ``"*"`` replaced by every segment column of *sample* (sorted, no repeats)."""
+    if ANY not in names:
+        return names
+    out: list[str] = []
+    for name in names:
+        for item in sample.segment_names() if name == ANY else [name]:
+            if item not in out:
+                out.append(item)
+    return out
+
+
 def split(
     sample: Sample, names: list[str], min_rows: int, *, keep: np.ndarray | None = None
 ) -> Split:
@@ -90,6 +106,7 @@ def split(
     *keep* (row indices) restricts every unit to those rows (e.g. rows with finite inputs);
     unit ``rows`` are then indices into the kept rows.
     """
+    names = expand(names, sample)
     units = [Unit(ALL, None, None, None, None)]
     too_small: list[dict[str, object]] = []
     missing: list[str] = []

@@ -23,6 +23,7 @@ from typing import Literal
 import numpy as np
 from pydantic import Field
 
+from service.gate.adaptive import Transform
 from service.gate.checks.base import CheckConfig, CheckContext, register, skipped
 from service.gate.types import Finding
 
@@ -42,6 +43,10 @@ class SkewConfig(CheckConfig):
         1e-3, ge=0, description="Scores further apart than this differ (share-differing)."
     )
     min_rows: int = Field(100, ge=1, description="Fewer rows with both scores: inconclusive.")
+
+    def natural_transform(self) -> Transform:
+        """Both statistics are non-negative: learn on the logarithm."""
+        return "log"
 
 
 @register("skew", SkewConfig, family="skew", needs_other=False)
