@@ -136,7 +136,18 @@ def histogram_overlay(
 ) -> Markup:
     """Bars of each series' share per bin, later series drawn over earlier ones, on one y
     scale (the largest share of any series). Bar heights are proportional to shares."""
-    box = Box(width, height, top=34)
+    # the legend: one entry per series, wrapped onto a second row when it does not fit
+    entries = [s.label + (f" (mean {num(s.mean)})" if s.mean is not None else "") for s in series]
+    rows: list[list[int]] = [[]]
+    used = 0.0
+    for i, text in enumerate(entries):
+        need = 34 + LEGEND_CHAR * len(text)
+        if rows[-1] and used + need > width:
+            rows.append([])
+            used = 0.0
+        rows[-1].append(i)
+        used += need
+    box = Box(width, height, top=14 + 20 * len(rows))
     if len(edges) < 2 or not series:
         return _svg(
             width,
@@ -188,12 +199,15 @@ def histogram_overlay(
         f'<line class="tg-axis" x1="{r(box.x0)}" x2="{r(box.x1)}" y1="{r(box.y0)}" '
         f'y2="{r(box.y0)}"/>'
     )
-    x = box.x0
-    for s in series:  # legend, top left, one row
-        text = s.label + (f" (mean {num(s.mean)})" if s.mean is not None else "")
-        body.append(f'<rect class="tg-swatch {s.css}" x="{r(x)}" y="8" width="12" height="12"/>')
-        body.append(_text(x + 17, 18, text, "tg-legend", "start"))
-        x += 34 + LEGEND_CHAR * len(text)
+    for row, members in enumerate(rows):  # legend, top left
+        x, y = 8.0, 8 + 20 * row
+        for i in members:
+            css, text = series[i].css, entries[i]
+            body.append(
+                f'<rect class="tg-swatch {css}" x="{r(x)}" y="{r(y)}" width="12" height="12"/>'
+            )
+            body.append(_text(x + 17, y + 10, text, "tg-legend", "start"))
+            x += 34 + LEGEND_CHAR * len(text)
     return _svg(
         width, height, "Score distributions: " + ", ".join(s.label for s in series), body, "tg-hist"
     )
