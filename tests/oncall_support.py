@@ -191,22 +191,18 @@ def free_port() -> int:
 class LiveService:
     url: str
     verdicts: dict[str, dict[str, Any]]
-    process: subprocess.Popen[bytes]
     log: Path
 
 
 @contextmanager
-def live_service(folder: Path) -> Iterator[LiveService]:
-    """uvicorn serving the app on a free 127.0.0.1 port, on a temporary SQLite file with the
-    scenario posted through the HTTP API. Stopped (by its process id) on exit."""
-    folder.mkdir(parents=True, exist_ok=True)
-    (folder / "bookshop.toml").write_text(POLICY, encoding="utf-8")
-    settings = migrated_settings(folder)
+def running_service(folder: Path, *, database_url: str, policy_dir: Path) -> Iterator[str]:
+    """uvicorn serving the app on a free 127.0.0.1 port over *database_url* (open mode);
+    yields its base URL. Stopped (by its process id) on exit."""
     port = free_port()
     env = {
         **os.environ,
-        "TIDEGATE_DATABASE_URL": settings.database_url,
-        "TIDEGATE_POLICY_DIR": str(folder),
+        "TIDEGATE_DATABASE_URL": database_url,
+        "TIDEGATE_POLICY_DIR": str(policy_dir),
         "TIDEGATE_AUTH": "open",
         "PYTHONPATH": str(ROOT),
     }
@@ -243,6 +239,23 @@ def live_service(folder: Path) -> Iterator[LiveService]:
             if process.poll() is not None or time.monotonic() > deadline:
                 raise RuntimeError("the service did not start:\n" + log.read_text())
             time.sleep(0.2)
+        yield url
+    finally:
+        process.terminate()
+        try:
+            process.wait(timeout=30)
+        except subprocess.TimeoutExpired:
+            process.kill()
+
+
+@contextmanager
+def live_service(folder: Path) -> Iterator[LiveService]:
+    """uvicorn serving the app on a free 127.0.0.1 port, on a temporary SQLite file with the
+    scenario posted through the HTTP API. Stopped (by its process id) on exit."""
+    folder.mkdir(parents=True, exist_ok=True)
+    (folder / "bookshop.toml").write_text(POLICY, encoding="utf-8")
+    settings = migrated_settings(folder)
+    with running_service(folder, database_url=settings.database_url, policy_dir=folder) as url:
         with httpx.Client(base_url=url, timeout=30) as http:
 
             def post(model: str, body: dict[str, Any]) -> dict[str, Any]:
@@ -251,14 +264,7 @@ def live_service(folder: Path) -> Iterator[LiveService]:
                 return response.json()  # type: ignore[no-any-return]
 
             verdicts = load(post, at=datetime.now(UTC) - timedelta(hours=3))
-        yield LiveService(url, verdicts, process, log)
-    finally:
-        process.terminate()
-        try:
-            process.wait(timeout=10)
-        except subprocess.TimeoutExpired:
-            process.kill()
-            process.wait()
+        yield LiveService(url, verdicts, log=folder / "service.log")
 
 
 # --- the demo scenario in a file ------------------------------------------------------------
