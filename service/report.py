@@ -83,7 +83,8 @@ def model_report(session: Session, *, model: ModelRow, now: datetime) -> dict[st
                     "learned": isinstance(f.get("details"), Mapping) and "adaptive" in f["details"],
                 }
             )
-    moving = {name: pts for name, pts in limits.items() if len({p["limit"] for p in pts}) > 1}
+    # a limit learned from history (an adaptive check) moves; the rest are the policy's
+    moving = {name: pts for name, pts in limits.items() if any(p["learned"] for p in pts)}
     return {
         "model": model.name,
         "verdicts_read": len(rows),

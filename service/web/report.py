@@ -50,10 +50,13 @@ def limit_charts(model: str, limits: dict[str, list[dict[str, Any]]]) -> list[di
             for p in points
         ]
         title = f"{check}: limit applied"
+        label = "limit each verdict was held to"
         charts.append(
             {
-                "wide": svg.trend_chart(series, title=title),
-                "narrow": svg.trend_chart(series, title=title, width=380, height=230, labels=3),
+                "wide": svg.trend_chart(series, title=title, value_label=label),
+                "narrow": svg.trend_chart(
+                    series, title=title, width=380, height=230, labels=3, value_label=label
+                ),
             }
         )
     return charts

@@ -282,6 +282,7 @@ def trend_chart(
     limit_label: str = "limit",
     scale: str = "auto",
     labels: int = 5,
+    value_label: str = "value",
 ) -> Markup:
     """The values as a line with a dot per verdict (filled brick when the check breached,
     ringed when the verdict was held for any reason), the per-verdict limit as one dashed step
@@ -337,7 +338,7 @@ def trend_chart(
         return ys(min(max(tr(value), lo), hi))
 
     body = [_text(box.x0 - 44, 16, title, "tg-legend", "start")]
-    keys: list[tuple[str, str]] = [("tg-line", "value")]
+    keys: list[tuple[str, str]] = [("tg-line", value_label)]
     if limits:
         last = next(p.limit for p in reversed(points) if p.limit is not None)
         keys.append(("tg-limit", f"{limit_label} (latest {num(last)})"))
