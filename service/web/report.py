@@ -55,7 +55,7 @@ def limit_charts(model: str, limits: dict[str, list[dict[str, Any]]]) -> list[di
             {
                 "wide": svg.trend_chart(series, title=title, value_label=label),
                 "narrow": svg.trend_chart(
-                    series, title=title, width=380, height=230, labels=3, value_label=label
+                    series, title=title, width=340, height=230, labels=3, value_label=label
                 ),
             }
         )

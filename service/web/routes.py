@@ -228,7 +228,7 @@ def model_context(
                 title=t.title,
                 bands=t.bands,
                 limit_label=t.limit_label,
-                width=380,
+                width=340,
                 height=230,
                 labels=3,
             ),
@@ -305,7 +305,7 @@ def overlay(dist: Mapping[str, Any], other_css: str) -> dict[str, Any]:
             series.append(svg.Series(s["label"], s["shares"], css, s.get("mean")))
     return {
         "wide": svg.histogram_overlay(dist["edges"], series),
-        "narrow": svg.histogram_overlay(dist["edges"], series, width=380, height=300),
+        "narrow": svg.histogram_overlay(dist["edges"], series, width=340, height=300),
     }
 
 

@@ -65,7 +65,7 @@ def test_verdict_page_answers_why_how_sure_what_changed_what_next(h: Harness) ->
 def test_verdict_page_draws_both_distributions(h: Harness) -> None:
     html = h.http.get("/ui/models/shelf-ranker/snapshots/s04").text
     chart, narrow = svgs(html, "tg-hist")  # drawn twice: for wide screens and for phones
-    assert narrow.get("width") == "380"
+    assert narrow.get("width") == "340"
     ns = "{http://www.w3.org/2000/svg}"
     groups = {g.get("class"): g for g in chart.iter(ns + "g")}
     cand = [float(r.get("data-share")) for r in groups["tg-bars tg-cand"].iter(ns + "rect")]
