@@ -14,6 +14,16 @@ also-read      a push whose reported recall@10 drops sharply; a push whose lists
                onto the bestsellers (coverage, Gini and popularity checks hold it)
 =============  ===========================================================================
 
+Each fault is held for its own reason: the collapse by health (no spread), the calibration
+blow-up by the ``calibration`` check, the NaN push by health (non-finite), the stale replay by
+lineage (its watermark lies before the serving baseline's), the recall drop by the reported
+metric, the list collapse by the list checks.
+
+Honest pairing: the shelf ranker's ``baseline_score`` (the same rows scored by the baseline)
+and ``served_score`` (what serving logged for them) come from the snapshot that serves when
+the post is made, which the simulation learns from each verdict (:meth:`DemoEvent.settle`;
+:func:`load` calls it). A caller that posts the events itself must call ``settle`` too.
+
 Everything is generated from fixed seeds; only the timestamps follow the clock (the scenario
 ends at the time the demo starts, so ages on the pages look natural).
 """
@@ -33,14 +43,15 @@ SEED = 20261201
 
 @dataclass
 class DemoEvent:
-    """One post of the scenario. Its body is made when first read (posts are made in time
-    order), from what serves at that moment; :meth:`settle` tells the model's simulation the
-    verdict, so the next body's ``baseline_score`` and ``served_score`` come from the snapshot
-    that actually serves, not from the trainer's last state."""
+    """One post of the scenario. *source* is its body, or a function that makes it when first
+    read (posts are made in time order), from what serves at that moment; :meth:`settle`
+    tells the model's simulation the verdict, so the next body's ``baseline_score`` and
+    ``served_score`` come from the snapshot that actually serves, not from the trainer's
+    last state."""
 
     model: str
     at: datetime
-    make: Callable[[], dict[str, Any]]
+    source: dict[str, Any] | Callable[[], dict[str, Any]]
     note: str = ""
     on_verdict: Callable[[dict[str, Any]], None] | None = None
     _body: dict[str, Any] | None = field(default=None, repr=False)
@@ -48,7 +59,7 @@ class DemoEvent:
     @property
     def body(self) -> dict[str, Any]:
         if self._body is None:
-            self._body = self.make()
+            self._body = self.source() if callable(self.source) else self.source
         return self._body
 
     def settle(self, verdict: dict[str, Any]) -> None:
@@ -296,7 +307,7 @@ class ShelfRanker:
             DemoEvent(
                 "shelf-ranker",
                 self.at(step),
-                make=self._maker(step),
+                self._maker(step),
                 note=self.note(step),
                 on_verdict=self.settle,
             )
@@ -307,11 +318,6 @@ class ShelfRanker:
 def shelf_ranker(end: datetime, *, hours: int = 36, rows: int = 3000) -> list[DemoEvent]:
     """The home-shelf ranker: one snapshot every 15 minutes for *hours* hours up to *end*."""
     return ShelfRanker(end, hours=hours, rows=rows).events()
-
-
-def _fixed(body: dict[str, Any]) -> Callable[[], dict[str, Any]]:
-    """A body made in advance (it does not depend on what serves)."""
-    return lambda: body
 
 
 def also_read(end: datetime, *, hours: int = 36) -> Iterator[DemoEvent]:
@@ -350,7 +356,7 @@ def also_read(end: datetime, *, hours: int = 36) -> Iterator[DemoEvent]:
             {"recall_at_10": round(step_recall, 5), "catalog_size": CATALOG},
             extra_columns=shelves.lists(rng, head_bias=head_bias),
         )
-        yield DemoEvent("also-read", at, make=_fixed(body), note=note)
+        yield DemoEvent("also-read", at, body, note=note)
         if not note:
             recall = step_recall
             parent = key
