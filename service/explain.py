@@ -457,7 +457,14 @@ def explain(
         lines.append(f"{title.lower()}:")
         lines.extend(f"  - {item}" for item in answers[key])
     if evidence is not None:
-        lines.extend(distribution_lines(evidence.get("distribution"), ascii_only=ascii_only))
+        # what each failed check compared with (the reference, the baseline, or both)
+        comparisons = evidence.get("comparisons") or [
+            {"against": "baseline", "distribution": evidence.get("distribution")}
+        ]
+        for c in comparisons:
+            if len(comparisons) > 1 or c.get("against") != "baseline":
+                lines.append(f"against the {c.get('against')} {c.get('key') or ''}:".rstrip())
+            lines.extend(distribution_lines(c.get("distribution"), ascii_only=ascii_only))
     lines.append("findings:")
     findings = sorted(verdict.get("findings", []), key=lambda f: ORDER.get(f["outcome"], 9))
     for f in findings:

@@ -88,6 +88,7 @@ def test_a_reference_hold_shows_the_reference_evidence(d: Demo) -> None:
     verdict = d.http.get(f"/v1/verdicts/{v['verdict_id']}").json()
     text = explain.explain(verdict, evidence)
     assert f"and reference {reference}" in text
+    assert f"against the reference {reference}:" in text  # its sparkline, not the baseline's
     assert f"reference {explain.number(ref_mean)}, candidate" in text
 
 
