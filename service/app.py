@@ -34,7 +34,9 @@ from service.heavy import Heavy
 from service.metrics import Metrics
 from service.settings import Settings
 from service.store import db as store_db
+from service.web import audit as web_audit
 from service.web import auth as web_auth
+from service.web import report as web_report
 from service.web import routes as web_routes
 
 log = logging.getLogger("tidegate")
@@ -115,6 +117,8 @@ def create_app(
         token_routes.router,
         metrics_routes.router,
         web_routes.router,
+        web_audit.router,
+        web_report.router,
         web_routes.root,
         web_auth.router,
         docs.router,

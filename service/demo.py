@@ -14,6 +14,16 @@ also-read      a push whose reported recall@10 drops sharply; a push whose lists
                onto the bestsellers (coverage, Gini and popularity checks hold it)
 =============  ===========================================================================
 
+Each fault is held for its own reason: the collapse by health (no spread), the calibration
+blow-up by the ``calibration`` check, the NaN push by health (non-finite), the stale replay by
+lineage (its watermark lies before the serving baseline's), the recall drop by the reported
+metric, the list collapse by the list checks.
+
+Honest pairing: the shelf ranker's ``baseline_score`` (the same rows scored by the baseline)
+and ``served_score`` (what serving logged for them) come from the snapshot that serves when
+the post is made, which the simulation learns from each verdict (:meth:`DemoEvent.settle`;
+:func:`load` calls it). A caller that posts the events itself must call ``settle`` too.
+
 Everything is generated from fixed seeds; only the timestamps follow the clock (the scenario
 ends at the time the demo starts, so ages on the pages look natural).
 """
@@ -21,7 +31,7 @@ ends at the time the demo starts, so ages on the pages look natural).
 from __future__ import annotations
 
 from collections.abc import Callable, Iterator
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import datetime, timedelta
 from typing import Any
 
@@ -33,10 +43,29 @@ SEED = 20261201
 
 @dataclass
 class DemoEvent:
+    """One post of the scenario. *source* is its body, or a function that makes it when first
+    read (posts are made in time order), from what serves at that moment; :meth:`settle`
+    tells the model's simulation the verdict, so the next body's ``baseline_score`` and
+    ``served_score`` come from the snapshot that actually serves, not from the trainer's
+    last state."""
+
     model: str
     at: datetime
-    body: dict[str, Any]
+    source: dict[str, Any] | Callable[[], dict[str, Any]]
     note: str = ""
+    on_verdict: Callable[[dict[str, Any]], None] | None = None
+    _body: dict[str, Any] | None = field(default=None, repr=False)
+
+    @property
+    def body(self) -> dict[str, Any]:
+        if self._body is None:
+            self._body = self.source() if callable(self.source) else self.source
+        return self._body
+
+    def settle(self, verdict: dict[str, Any]) -> None:
+        """Record the verdict of this post (what serves next follows from it)."""
+        if self.on_verdict is not None:
+            self.on_verdict(verdict)
 
 
 def _auc(labels: np.ndarray, scores: np.ndarray) -> float:
@@ -160,37 +189,67 @@ def _body(
     }
 
 
-def shelf_ranker(end: datetime, *, hours: int = 36, rows: int = 3000) -> Iterator[DemoEvent]:
-    """The home-shelf ranker: one snapshot every 15 minutes for *hours* hours up to *end*."""
-    rng = np.random.default_rng(SEED)
-    world = World(rng, rows)
-    steps = hours * 4
-    start = end - timedelta(minutes=15 * steps)
-    bad = {
-        steps // 4: "collapse",
-        steps // 2: "calibration",
-        (steps * 2) // 3: "nan",
-        (steps * 5) // 6: "stale",
-    }
-    creep_start = (steps * 11) // 20
-    serving_skill, serving_bias = 0.80, 0.0
-    parent: str | None = None
-    for step in range(steps):
-        at = start + timedelta(minutes=15 * (step + 1))
+@dataclass
+class _Params:
+    """A snapshot of the shelf ranker as the simulation knows it."""
+
+    key: str
+    skill: float
+    bias: float
+    watermark: datetime
+
+
+class ShelfRanker:
+    """The home-shelf ranker's trainer and serving fleet.
+
+    The trainer goes on from its own last state that had no planted fault; during the creep
+    that includes every creeping step, held or not (so a stuck model drifts further from its
+    baseline). Serving runs whatever the gate (or an operator) last promoted: the candidate's
+    ``baseline_score`` (the same rows scored by the serving snapshot) and ``served_score``
+    (what serving logged for them) come from that snapshot. Bodies must be made in step order.
+    """
+
+    def __init__(self, end: datetime, *, hours: int, rows: int) -> None:
+        self.rng = np.random.default_rng(SEED)
+        self.world = World(self.rng, rows)
+        self.rows = rows
+        self.steps = hours * 4
+        self.start = end - timedelta(minutes=15 * self.steps)
+        steps = self.steps
+        self.bad = {
+            steps // 4: "collapse",
+            steps // 2: "calibration",
+            (steps * 2) // 3: "nan",
+            (steps * 5) // 6: "stale",
+        }
+        self.creep_start = (steps * 11) // 20
+        self.trainer_skill, self.trainer_bias = 0.80, 0.0
+        self.parent: str | None = None
+        self.serving: _Params | None = None
+        self.built = 0
+        self.pending: tuple[_Params, str] | None = None
+
+    def at(self, step: int) -> datetime:
+        return self.start + timedelta(minutes=15 * (step + 1))
+
+    def note(self, step: int) -> str:
+        return self.bad.get(step, "") or ("creep" if step >= self.creep_start else "")
+
+    def body(self, step: int) -> dict[str, Any]:
+        if step != self.built:
+            raise RuntimeError(f"demo bodies are made in order: step {step} before {self.built}")
+        self.built += 1
+        rng, world, rows = self.rng, self.world, self.rows
+        at = self.at(step)
         key = at.strftime("%Y-%m-%dT%H:%MZ")
         watermark = at - timedelta(minutes=1)
         holdout = world.holdout()
-        skill = serving_skill + rng.normal(0.0, 0.004)
-        bias = serving_bias + rng.normal(0.0, 0.01)
-        scores = world.score(holdout["truth"], skill=skill, bias=bias, noise_seed=SEED)
-        baseline_scores = world.score(
-            holdout["truth"], skill=serving_skill, bias=serving_bias, noise_seed=SEED
-        )
-        kind = bad.get(step, "")
-        if step >= creep_start:
+        skill = self.trainer_skill + rng.normal(0.0, 0.004)
+        bias = self.trainer_bias + rng.normal(0.0, 0.01)
+        kind = self.note(step)
+        if step >= self.creep_start:
             bias += CREEP_PER_STEP  # the slow creep: a small step up on every push
-            scores = world.score(holdout["truth"], skill=skill, bias=bias, noise_seed=SEED)
-            kind = kind or "creep"
+        scores = world.score(holdout["truth"], skill=skill, bias=bias, noise_seed=SEED)
         if kind == "collapse":
             scores = 0.31 + rng.normal(0.0, 1e-8, rows)
         elif kind == "calibration":
@@ -199,27 +258,66 @@ def shelf_ranker(end: datetime, *, hours: int = 36, rows: int = 3000) -> Iterato
             scores = scores.copy()
             scores[rng.random(rows) < 0.03] = np.nan
         elif kind == "stale":
+            # a replayed old job: trained only up to well before what serves now
             watermark = at - timedelta(hours=3)
+            if self.serving is not None:
+                watermark = min(watermark, self.serving.watermark - timedelta(minutes=30))
         rows_trained = int(rng.normal(1_800_000, 60_000))
-        # What serving logged for the baseline on the same rows: agrees with the offline
-        # recomputation up to rounding noise (no offline/online skew in the demo).
-        served = np.clip(baseline_scores + rng.normal(0.0, 2e-4, rows), 0.0, 1.0)
-        body = _body(
+        noise = rng.normal(0.0, 2e-4, rows)
+        extra: dict[str, list[Any]] = {}
+        baseline_scores = None
+        if self.serving is not None:
+            baseline_scores = world.score(
+                holdout["truth"],
+                skill=self.serving.skill,
+                bias=self.serving.bias,
+                noise_seed=SEED,
+            )
+            # What serving logged for the same rows: agrees with the offline recomputation up
+            # to rounding noise (no offline/online skew in the demo).
+            served = np.clip(baseline_scores + noise, 0.0, 1.0)
+            extra["served_score"] = [round(float(v), 6) for v in served]
+        self.pending = (_Params(key, skill, bias, watermark), kind)
+        return _body(
             key,
-            parent,
+            self.parent,
             watermark,
             rows_trained,
             holdout,
             scores,
             baseline_scores,
-            extra_columns={"served_score": [round(float(v), 6) for v in served]},
+            extra_columns=extra,
         )
-        yield DemoEvent("shelf-ranker", at, body, kind)
-        # The trainer goes on from its own last good state; during the creep that includes
-        # every creeping step, held or not (so a stuck model drifts further from its baseline).
+
+    def settle(self, verdict: dict[str, Any]) -> None:
+        assert self.pending is not None
+        made, kind = self.pending
+        self.pending = None
+        if verdict.get("moved_baseline", verdict.get("decision") == "promote"):
+            self.serving = made
         if kind in ("", "creep"):
-            serving_skill, serving_bias = skill, bias
-            parent = key
+            self.trainer_skill, self.trainer_bias = made.skill, made.bias
+            self.parent = made.key
+
+    def _maker(self, step: int) -> Callable[[], dict[str, Any]]:
+        return lambda: self.body(step)
+
+    def events(self) -> list[DemoEvent]:
+        return [
+            DemoEvent(
+                "shelf-ranker",
+                self.at(step),
+                self._maker(step),
+                note=self.note(step),
+                on_verdict=self.settle,
+            )
+            for step in range(self.steps)
+        ]
+
+
+def shelf_ranker(end: datetime, *, hours: int = 36, rows: int = 3000) -> list[DemoEvent]:
+    """The home-shelf ranker: one snapshot every 15 minutes for *hours* hours up to *end*."""
+    return ShelfRanker(end, hours=hours, rows=rows).events()
 
 
 def also_read(end: datetime, *, hours: int = 36) -> Iterator[DemoEvent]:
@@ -258,7 +356,7 @@ def also_read(end: datetime, *, hours: int = 36) -> Iterator[DemoEvent]:
             {"recall_at_10": round(step_recall, 5), "catalog_size": CATALOG},
             extra_columns=shelves.lists(rng, head_bias=head_bias),
         )
-        yield DemoEvent("also-read", at, body, note)
+        yield DemoEvent("also-read", at, body, note=note)
         if not note:
             recall = step_recall
             parent = key
@@ -355,5 +453,6 @@ def load(post: Callable[[DemoEvent], dict[str, Any]], events: list[DemoEvent]) -
     counts = {"promote": 0, "hold": 0}
     for event in events:
         verdict = post(event)
+        event.settle(verdict)
         counts[verdict["decision"]] += 1
     return counts

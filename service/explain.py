@@ -69,15 +69,57 @@ def limit_ratio(value: float | None, limit: float | None) -> float | None:
     return value / limit
 
 
-def assess(finding: Mapping[str, Any]) -> tuple[str, str]:
+def too_few_rows(findings: Sequence[Mapping[str, Any]]) -> tuple[int, int] | None:
+    """(rows, rows required) when the ``health.rows`` finding says the sample is too small."""
+    for f in findings:
+        if f.get("check") == "health.rows" and f.get("outcome") == "breach":
+            value, limit = f.get("value"), f.get("limit")
+            if value is not None and limit is not None:
+                return int(value), int(limit)
+    return None
+
+
+def _leak(finding: Mapping[str, Any]) -> tuple[str, str] | None:
+    """The leak guard's own reading: a gain above ``max_gain`` (not the margin's limit)."""
+    details = finding.get("details") or {}
+    if not isinstance(details, Mapping):
+        return None
+    max_gain, gain = details.get("max_gain"), details.get("gain")
+    value, interval = finding.get("value"), finding.get("interval")
+    if max_gain is None or gain is None or gain <= max_gain:
+        return None
+    text = f"a gain of {number(gain)} is above the leak guard max_gain {number(max_gain)}"
+    if interval and value:
+        sign = gain / value  # +1 when higher is better, -1 when lower is
+        low = min(sign * interval[0], sign * interval[1])
+        if low > max_gain:
+            return "clear", f"{text}, and so is the whole interval of the gain (from {number(low)})"
+        return "marginal", f"{text}, but the interval of the gain reaches down to {number(low)}"
+    return "likely", text
+
+
+def assess(
+    finding: Mapping[str, Any], *, few_rows: tuple[int, int] | None = None
+) -> tuple[str, str]:
     """How sure the gate is of one failed finding: a level (certain, clear, likely, marginal,
-    uncertain) and a sentence."""
+    uncertain, unreliable) and a sentence. *few_rows* (rows, required; see
+    :func:`too_few_rows`) marks every figure computed from the sample as unreliable."""
     outcome = finding.get("outcome")
     kind = finding.get("kind")
     value, limit = finding.get("value"), finding.get("limit")
     pvalue, interval = finding.get("pvalue"), finding.get("interval")
     if finding.get("statistic") == "error":
         return "certain", "the check itself failed to run; the gate holds when it cannot judge"
+    if kind == "health":
+        return "certain", "read straight off the candidate's own sample: no sampling error"
+    if kind == "lineage":
+        return "certain", "read from the snapshots' metadata: no sampling error"
+    if few_rows is not None and kind != "metric":
+        rows, required = few_rows
+        return "unreliable", (
+            f"computed from only {rows:,} rows (the policy asks for {required:,}): its "
+            "figures are unreliable"
+        )
     if outcome == "inconclusive":
         return "uncertain", "the data cannot settle it either way"
     if outcome == "underpowered":
@@ -85,10 +127,9 @@ def assess(finding: Mapping[str, Any]) -> tuple[str, str]:
             "the sample is too small to decide against the margin: no evidence of harm, and "
             "none of safety; the minimum detectable effect says how many rows would decide it"
         )
-    if kind == "health":
-        return "certain", "read straight off the candidate's own sample: no sampling error"
-    if kind == "lineage":
-        return "certain", "read from the snapshots' metadata: no sampling error"
+    leak = _leak(finding)
+    if leak is not None:
+        return leak
     if interval and limit is not None and value is not None:
         low, high = interval
         side = 1.0 if value >= limit else -1.0
@@ -198,6 +239,43 @@ def _watermark(candidate: str, baseline: str) -> str:
     return f"trained until {moment(candidate)}: {_span(gap)} {where} the baseline's watermark"
 
 
+def judged_against(
+    verdict: Mapping[str, Any], evidence: Mapping[str, Any] | None = None
+) -> list[str]:
+    """``baseline KEY`` and, when a check compared with it, ``reference KEY``."""
+    out = [f"baseline {verdict.get('baseline') or '(none)'}"]
+    reference = verdict.get("reference") or (evidence or {}).get("reference")
+    uses_reference = any(f.get("against") == "reference" for f in verdict.get("findings", []))
+    if reference and uses_reference:
+        out.append(f"reference {reference}")
+    return out
+
+
+def state_line(verdict: Mapping[str, Any], evidence: Mapping[str, Any]) -> str:
+    """The verdict's state in one plain sentence: the decision in force, how it came to be,
+    and what serves now (``promoted by override, but X serves now``)."""
+    effective = verdict.get("effective_decision", verdict["decision"])
+    how = " by override" if verdict.get("overridden") else ""
+    word = "held" if effective == "hold" else "promoted"
+    serving = evidence.get("serving")
+    if evidence.get("candidate_serving"):
+        return f"{word}{how}; this snapshot serves now"
+    if not serving:
+        return f"{word}{how}; nothing serves"
+    if effective == "promote":
+        return f"{word}{how}, but {serving} serves now"
+    return f"{word}{how}; {serving} serves now"
+
+
+def _side_changes(role: str, cand: Mapping[str, Any], other: Mapping[str, Any]) -> list[str]:
+    out: list[str] = []
+    if cand.get("score_mean") is not None and other.get("score_mean") is not None:
+        out.append(
+            _change(f"mean score vs {role} {other['key']}", other["score_mean"], cand["score_mean"])
+        )
+    return out
+
+
 def _changes(verdict: Mapping[str, Any], evidence: Mapping[str, Any] | None) -> list[str]:
     out: list[str] = []
     if evidence is None:
@@ -210,10 +288,13 @@ def _changes(verdict: Mapping[str, Any], evidence: Mapping[str, Any] | None) -> 
         return out
     cand = evidence.get("candidate") or {}
     base = evidence.get("baseline_snapshot")
+    ref = evidence.get("reference_snapshot")
+    if "reference" in (evidence.get("compared_with") or []) and ref is not None:
+        # what the failed reference checks compared with comes first, named as such
+        out.extend(_side_changes("reference", cand, ref))
     if base is None:
-        return ["nothing to compare with: there was no baseline"]
-    if cand.get("score_mean") is not None and base.get("score_mean") is not None:
-        out.append(_change("mean score", base["score_mean"], cand["score_mean"]))
+        return out or ["nothing to compare with: there was no baseline"]
+    out.extend(_side_changes("baseline", cand, base))
     if cand.get("nonfinite"):
         out.append(
             f"{cand['nonfinite']:,} of {cand['sample_rows']:,} candidate scores are not "
@@ -296,8 +377,9 @@ def briefing(
         how = ["the gate could not judge (fail closed): " + str(verdict["error"])]
     elif failed:
         how = []
+        few = too_few_rows(verdict.get("findings", []))
         for f in failed:
-            level, sentence = assess(f)
+            level, sentence = assess(f, few_rows=few)
             how.append(f"{f['check']}: {level}: {sentence}")
     else:
         how = ["no blocking check failed"]
@@ -355,7 +437,7 @@ def _finding_line(f: Mapping[str, Any]) -> list[str]:
         parts.append(f"limit {number(f['limit'])}")
     if f.get("baseline_value") is not None or f.get("candidate_value") is not None:
         parts.append(
-            f"baseline {number(f.get('baseline_value'))}, candidate "
+            f"{f.get('against') or 'baseline'} {number(f.get('baseline_value'))}, candidate "
             f"{number(f.get('candidate_value'))}"
         )
     if f.get("interval"):
@@ -391,8 +473,11 @@ def explain(
     """The verdict as a short report: the headline, the four answers, the distributions, every
     finding and the segments."""
     lines = [headline(verdict)]
+    if evidence is not None:
+        lines.append(f"  {state_line(verdict, evidence)}")
+    compared = " and ".join(judged_against(verdict, evidence))
     lines.append(
-        f"  judged against baseline {verdict.get('baseline') or '(none)'}"
+        f"  judged against {compared}"
         f" under policy {verdict.get('policy') or '(none)'} {verdict.get('policy_digest') or ''}"
         f" at {moment(verdict.get('created_at'))} (verdict {verdict.get('verdict_id', '?')})"
     )
@@ -401,7 +486,14 @@ def explain(
         lines.append(f"{title.lower()}:")
         lines.extend(f"  - {item}" for item in answers[key])
     if evidence is not None:
-        lines.extend(distribution_lines(evidence.get("distribution"), ascii_only=ascii_only))
+        # what each failed check compared with (the reference, the baseline, or both)
+        comparisons = evidence.get("comparisons") or [
+            {"against": "baseline", "distribution": evidence.get("distribution")}
+        ]
+        for c in comparisons:
+            if len(comparisons) > 1 or c.get("against") != "baseline":
+                lines.append(f"against the {c.get('against')} {c.get('key') or ''}:".rstrip())
+            lines.extend(distribution_lines(c.get("distribution"), ascii_only=ascii_only))
     lines.append("findings:")
     findings = sorted(verdict.get("findings", []), key=lambda f: ORDER.get(f["outcome"], 9))
     for f in findings:

@@ -12,6 +12,7 @@ A snapshot whose raw sample was pruned is replayed without it (checks that need 
 
 from __future__ import annotations
 
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -25,6 +26,20 @@ from service.gate.types import GateInput
 from service.store import repo
 from service.text import shown
 from service.views import iso
+
+
+def holding_checks(decision: str, findings: Sequence[Mapping[str, Any]]) -> list[str]:
+    """The checks that held a verdict: blocking breaches and blocking inconclusive findings of
+    a verdict the gate held (none of a promoted one)."""
+    if decision != "hold":
+        return []
+    names = []
+    for f in findings:
+        if f.get("blocking", True) and f.get("outcome") in ("breach", "inconclusive"):
+            name = str(f.get("check"))
+            if name not in names:
+                names.append(name)
+    return names
 
 
 @dataclass
@@ -143,6 +158,10 @@ def replay(
                 "effective_decision": effective,
                 "replay_decision": outcome.decision,
                 "replay_reasons": list(outcome.reasons),
+                # the checks that would hold it (blocking breaches and inconclusive findings)
+                "replay_held_by": holding_checks(
+                    outcome.decision, [f.to_dict() for f in outcome.findings]
+                ),
                 "changed": outcome.decision != verdict.decision,
                 "sample_pruned": snap.sample_pruned_at is not None,
             }

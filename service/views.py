@@ -134,18 +134,38 @@ def model_view(
     # A model no policy matches uses the default threshold.
     threshold = (policy.history if policy is not None else HistoryRules()).stuck_after_holds
     # One read of the latest verdicts serves both the last verdict and the run of holds.
-    rows, _ = repo.list_verdicts(session, model_id=model.id, limit=max(50, threshold + 1))
+    rows, next_id = repo.list_verdicts(session, model_id=model.id, limit=max(50, threshold + 1))
     overrides = repo.overrides_for(session, verdict_ids=[v.id for v, _ in rows])
     last_view = None
     if rows:
         last, last_snapshot = rows[0]
         last_view = verdict_summary(last, last_snapshot, overrides[last.id], model.name)
     holds = _holds_in_a_row(rows, overrides)
+    before_id = next_id
+    while holds and holds == len(rows) and before_id is not None:
+        # the run goes on past what was read: count on, page by page (no cap: the list, the
+        # API, the CLI and the stuck finding say the same number)
+        rows, before_id = repo.list_verdicts(
+            session, model_id=model.id, limit=500, before_id=before_id
+        )
+        overrides = repo.overrides_for(session, verdict_ids=[v.id for v, _ in rows])
+        more = _holds_in_a_row(rows, overrides)
+        holds += more
+        if more < len(rows):
+            break
+    watermark = repo.utc(baseline.trained_until) if baseline is not None else None
+    data_age = (now - watermark).total_seconds() if watermark else None
+    latest = repo.promotions(session, model_id=model.id, limit=1)
     return {
         "name": model.name,
         "baseline": baseline.key if baseline else None,
         "baseline_since": iso(since),
         "baseline_age_seconds": round(age, 1) if age is not None else None,
+        # serving age (since it became the baseline) and data age (since its training data
+        # ends) differ after a roll-back to an old snapshot: both are shown, by name
+        "baseline_trained_until": iso(watermark),
+        "baseline_data_age_seconds": round(data_age, 1) if data_age is not None else None,
+        "baseline_cause": latest[0].cause if latest else None,
         "reference": reference.key if reference else None,
         "reference_lag_hours": policy.reference.lag_hours if policy is not None else None,
         "last_verdict": last_view,
@@ -216,58 +236,118 @@ def audit_view(row: AuditRow) -> dict[str, Any]:
     }
 
 
+#: Outcomes whose evidence the verdict page leads with.
+FAILED_OUTCOMES = ("breach", "inconclusive", "advisory")
+
+
+def compared_with(findings: Sequence[dict[str, Any]]) -> list[str]:
+    """What the failed findings compared the candidate with (``baseline``, ``reference``), in
+    that order; the baseline alone when no failed finding compared with anything."""
+    sides = {
+        str(f.get("against"))
+        for f in findings
+        if f.get("outcome") in FAILED_OUTCOMES and f.get("against") in ("baseline", "reference")
+    }
+    return [s for s in ("baseline", "reference") if s in sides] or ["baseline"]
+
+
 def verdict_evidence(session: Session, *, verdict: VerdictRow, bins: int = 30) -> dict[str, Any]:
-    """The evidence behind a verdict for a person: both score distributions on common bins,
-    the per-segment table, what changed between baseline and candidate, and what serves now."""
-    from service import evidence
+    """The evidence behind a verdict for a person: the candidate's score distribution beside
+    what each failed check compared it with (the baseline, the reference, or both), the
+    per-segment table, what changed, list evidence for list checks, and what serves now."""
+    from service import evidence, list_evidence
 
     snapshot = repo.snapshot_by_id(session, snapshot_id=verdict.snapshot_id)
     model = session.get(ModelRow, verdict.model_id)
     assert snapshot is not None and model is not None
     baseline = repo.snapshot_by_id(session, snapshot_id=verdict.baseline_id)
-    cand_sample = (
-        repo.load_sample(session, snapshot_id=snapshot.id)
-        if snapshot.sample_pruned_at is None
-        else None
-    )
-    base_sample = (
-        repo.load_sample(session, snapshot_id=baseline.id)
-        if baseline is not None and baseline.sample_pruned_at is None
-        else None
-    )
+    reference = repo.snapshot_by_id(session, snapshot_id=verdict.reference_id)
+    samples: dict[int, Any] = {}
+
+    def sample_of(row: SnapshotRow | None) -> Any:
+        if row is None or row.sample_pruned_at is not None:
+            return None
+        if row.id not in samples:
+            samples[row.id] = repo.load_sample(session, snapshot_id=row.id)
+        return samples[row.id]
+
+    cand_sample = sample_of(snapshot)
+    base_sample = sample_of(baseline)
     cand_side = None
     if cand_sample is not None:
         cand_side = evidence.SideInput(f"candidate {snapshot.key}", values=cand_sample.score)
     elif snapshot.summary:
         cand_side = evidence.SideInput(f"candidate {snapshot.key}", summary=snapshot.summary)
-    base_side = None
-    paired = cand_sample.column("baseline_score") if cand_sample is not None else None
-    if baseline is not None and base_sample is not None:
-        base_side = evidence.SideInput(f"baseline {baseline.key}", values=base_sample.score)
-    elif paired is not None:
-        base_side = evidence.SideInput(
-            "baseline (scores on the same rows)", values=paired, source="paired"
+
+    def other_side(role: str, row: SnapshotRow | None) -> Any:
+        other = sample_of(row)
+        if row is not None and other is not None:
+            return evidence.SideInput(f"{role} {row.key}", values=other.score)
+        paired = cand_sample.column("baseline_score") if cand_sample is not None else None
+        if role == "baseline" and paired is not None:
+            return evidence.SideInput(
+                "baseline (scores on the same rows)", values=paired, source="paired"
+            )
+        if row is not None and row.summary:
+            return evidence.SideInput(f"{role} {row.key}", summary=row.summary)
+        return None
+
+    findings = list(verdict.findings)
+    sides = compared_with(findings)
+    comparisons = []
+    for role in sides:
+        row = baseline if role == "baseline" else reference
+        dist = evidence.distribution(cand_side, other_side(role, row), bins=bins)
+        comparisons.append(
+            {
+                "against": role,
+                "key": row.key if row else None,
+                "checks": [
+                    f["check"]
+                    for f in findings
+                    if f.get("against") == role and f.get("outcome") in FAILED_OUTCOMES
+                ],
+                "distribution": dist.to_dict(),
+                "snapshot": snapshot_brief(row),
+            }
         )
-    elif baseline is not None and baseline.summary:
-        base_side = evidence.SideInput(f"baseline {baseline.key}", summary=baseline.summary)
-    dist = evidence.distribution(cand_side, base_side, bins=bins)
+    main = evidence.distribution(cand_side, other_side("baseline", baseline), bins=bins)
     serving = repo.snapshot_by_id(session, snapshot_id=model.baseline_id)
     promoted = [
         p
         for p in promotions_view(session, model=model, limit=200)
         if p["snapshot"] == snapshot.key or p["previous"] == snapshot.key
     ]
+    lists = None
+    list_checks = [f for f in findings if f.get("kind") == "lists"]
+    if list_checks and cand_sample is not None:
+        role = str(list_checks[0].get("against") or "baseline")
+        other_row = baseline if role == "baseline" else reference
+        lists = list_evidence.list_evidence(
+            cand_sample,
+            sample_of(other_row),
+            against=role,
+            other_key=other_row.key if other_row else None,
+            k=list_evidence.k_of(list_checks),
+            catalog_size=list_evidence.catalog_of(snapshot.metrics or {}),
+        )
     return {
         "verdict_id": verdict.id,
         "model": model.name,
         "snapshot": snapshot.key,
         "baseline": baseline.key if baseline else None,
-        "distribution": dist.to_dict(),
+        "reference": reference.key if reference else None,
+        "compared_with": sides,
+        "distribution": main.to_dict(),
+        "comparisons": comparisons,
         "segments": evidence.segment_table(cand_sample, base_sample) if cand_sample else [],
         "finding_segments": evidence.finding_segment_rows(verdict.findings),
         "candidate": snapshot_brief(snapshot),
         "baseline_snapshot": snapshot_brief(baseline),
+        "reference_snapshot": snapshot_brief(reference),
+        "lists": lists,
         "serving": serving.key if serving else None,
+        "serving_since": iso(model.baseline_since),
         "candidate_serving": serving is not None and serving.id == snapshot.id,
         "promotions": promoted,
     }

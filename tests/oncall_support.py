@@ -191,22 +191,18 @@ def free_port() -> int:
 class LiveService:
     url: str
     verdicts: dict[str, dict[str, Any]]
-    process: subprocess.Popen[bytes]
     log: Path
 
 
 @contextmanager
-def live_service(folder: Path) -> Iterator[LiveService]:
-    """uvicorn serving the app on a free 127.0.0.1 port, on a temporary SQLite file with the
-    scenario posted through the HTTP API. Stopped (by its process id) on exit."""
-    folder.mkdir(parents=True, exist_ok=True)
-    (folder / "bookshop.toml").write_text(POLICY, encoding="utf-8")
-    settings = migrated_settings(folder)
+def running_service(folder: Path, *, database_url: str, policy_dir: Path) -> Iterator[str]:
+    """uvicorn serving the app on a free 127.0.0.1 port over *database_url* (open mode);
+    yields its base URL. Stopped (by its process id) on exit."""
     port = free_port()
     env = {
         **os.environ,
-        "TIDEGATE_DATABASE_URL": settings.database_url,
-        "TIDEGATE_POLICY_DIR": str(folder),
+        "TIDEGATE_DATABASE_URL": database_url,
+        "TIDEGATE_POLICY_DIR": str(policy_dir),
         "TIDEGATE_AUTH": "open",
         "PYTHONPATH": str(ROOT),
     }
@@ -233,7 +229,7 @@ def live_service(folder: Path) -> Iterator[LiveService]:
         )
     url = f"http://127.0.0.1:{port}"
     try:
-        deadline = time.monotonic() + 30
+        deadline = time.monotonic() + 120  # a busy 2-core machine starts slowly
         while True:
             try:
                 if httpx.get(url + "/healthz", timeout=1).status_code == 200:
@@ -243,6 +239,23 @@ def live_service(folder: Path) -> Iterator[LiveService]:
             if process.poll() is not None or time.monotonic() > deadline:
                 raise RuntimeError("the service did not start:\n" + log.read_text())
             time.sleep(0.2)
+        yield url
+    finally:
+        process.terminate()
+        try:
+            process.wait(timeout=30)
+        except subprocess.TimeoutExpired:
+            process.kill()
+
+
+@contextmanager
+def live_service(folder: Path) -> Iterator[LiveService]:
+    """uvicorn serving the app on a free 127.0.0.1 port, on a temporary SQLite file with the
+    scenario posted through the HTTP API. Stopped (by its process id) on exit."""
+    folder.mkdir(parents=True, exist_ok=True)
+    (folder / "bookshop.toml").write_text(POLICY, encoding="utf-8")
+    settings = migrated_settings(folder)
+    with running_service(folder, database_url=settings.database_url, policy_dir=folder) as url:
         with httpx.Client(base_url=url, timeout=30) as http:
 
             def post(model: str, body: dict[str, Any]) -> dict[str, Any]:
@@ -251,11 +264,49 @@ def live_service(folder: Path) -> Iterator[LiveService]:
                 return response.json()  # type: ignore[no-any-return]
 
             verdicts = load(post, at=datetime.now(UTC) - timedelta(hours=3))
-        yield LiveService(url, verdicts, process, log)
-    finally:
-        process.terminate()
-        try:
-            process.wait(timeout=10)
-        except subprocess.TimeoutExpired:
-            process.kill()
-            process.wait()
+        yield LiveService(url, verdicts, log=folder / "service.log")
+
+
+# --- the demo scenario in a file ------------------------------------------------------------
+
+#: End of the demo scenario the on-call tests load (12 hours of it, seeded).
+DEMO_END = datetime(2026, 12, 1, 12, 0, tzinfo=UTC)
+
+
+@dataclass
+class DemoData:
+    """The demo loaded into a SQLite file: each post's note and verdict, keyed by snapshot."""
+
+    settings: Settings
+    verdicts: dict[tuple[str, str], dict[str, Any]]
+    notes: dict[tuple[str, str], str]
+    now: datetime
+
+    def keys(self, model: str, note: str) -> list[str]:
+        return [k for (m, k), n in self.notes.items() if m == model and n == note]
+
+
+def load_demo(folder: Path, *, hours: int = 12) -> DemoData:
+    """Load *hours* of the demo (``service.demo``, the policies in ``config/policies``) into
+    a fresh SQLite file through the API, the clock following the posts."""
+    from service import demo
+
+    folder.mkdir(parents=True, exist_ok=True)
+    settings = Settings(
+        database_url=f"sqlite:///{folder / 'demo.db'}",
+        auth="open",
+        policy_dir=ROOT / "config" / "policies",
+    )
+    db.upgrade(settings)
+    clock = Clock(DEMO_END)
+    verdicts: dict[tuple[str, str], dict[str, Any]] = {}
+    notes: dict[tuple[str, str], str] = {}
+    with TestClient(create_app(settings, clock=clock)) as http:
+        for event in demo.scenario(DEMO_END, hours=hours):
+            clock.now = event.at + timedelta(seconds=40)
+            response = http.post(f"/v1/models/{event.model}/snapshots", json=event.body)
+            assert response.status_code == 201, response.text
+            event.settle(response.json())
+            verdicts[(event.model, event.body["key"])] = response.json()
+            notes[(event.model, event.body["key"])] = event.note
+    return DemoData(settings, verdicts, notes, DEMO_END + timedelta(minutes=5))

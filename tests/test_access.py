@@ -13,7 +13,7 @@ from sqlalchemy import create_engine, inspect, text
 
 from service.api.deps import ROLE_ACTIONS, RouteInfo, app_routes
 from service.store import tokens
-from tests.databases import Api, snapshot_body
+from tests.databases import TEST_POLICY_TEXT, Api, snapshot_body
 
 #: Routes that are not API routes: the schema and its documentation pages (public).
 DOCUMENTATION = {"/openapi.json", "/docs", "/docs/oauth2-redirect", "/redoc"}
@@ -28,6 +28,9 @@ SCOPE_RULE = {
     ("GET", "/v1/audit"): "filtered",
     ("GET", "/ui/"): "filtered",
     ("GET", "/ui/verdicts/{verdict_id}"): "object",
+    ("GET", "/ui/audit"): "filtered",
+    ("GET", "/ui/report"): "filtered",
+    ("POST", "/ui/report/replay"): "object",
     ("POST", "/ui/verdicts/{verdict_id}/override"): "object",
     ("GET", "/v1/models"): "filtered",
     ("GET", "/v1/policies"): "filtered",
@@ -122,6 +125,13 @@ class World:
             return "form", {
                 "snapshot": self.other_baseline(),
                 "reason": "walk",
+                "csrf_token": self.form_token(),
+            }
+        if (method, path) == ("POST", "/ui/report/replay"):
+            return "form", {
+                "model": MODEL,
+                "policy": TEST_POLICY_TEXT,
+                "days": "7",
                 "csrf_token": self.form_token(),
             }
         if (method, path) == ("POST", "/ui/sign-in"):

@@ -146,7 +146,7 @@ def test_briefing_answers_four_questions_for_a_hold() -> None:
     assert answers["why"] == ["score PSI 0.31 vs baseline exceeds 0.1, p < 1e-16"]
     assert answers["how_sure"] == ["score-psi: clear: 3.1× its limit, p < 1e-16: far beyond chance"]
     changed = answers["what_changed"]
-    assert "mean score 0.3 → 0.45 (+0.15)" in changed
+    assert "mean score vs baseline 2026-12-01T02:30Z 0.3 → 0.45 (+0.15)" in changed
     assert "auc 0.781 → 0.762 (-0.019)" in changed
     assert "training code b7e41d2 → 9f2c1e0" in changed
     assert "trained until 2026-12-01 02:44 UTC: 15 min past the baseline's watermark" in changed
@@ -154,7 +154,7 @@ def test_briefing_answers_four_questions_for_a_hold() -> None:
     same = explain.briefing(
         verdict(), {**EVIDENCE, "candidate": {**EVIDENCE["candidate"], "score_mean": 0.30}}
     )
-    assert "mean score 0.3, unchanged" in same["what_changed"]
+    assert "mean score vs baseline 2026-12-01T02:30Z 0.3, unchanged" in same["what_changed"]
     nxt = answers["what_next"]
     assert nxt[0] == "nothing to do to stay safe: the baseline 2026-12-01T02:30Z keeps serving"
     assert any("tidegate override 812 --decision promote" in line for line in nxt)

@@ -205,6 +205,17 @@ class ModelPublic(BaseModel):
     baseline: str | None = None
     baseline_since: str | None = None
     baseline_age_seconds: float | None = None
+    baseline_trained_until: str | None = Field(
+        None, description="The serving snapshot's training watermark (where its data ends)."
+    )
+    baseline_data_age_seconds: float | None = Field(
+        None,
+        description="Seconds since the serving snapshot's data ends (differs from the serving "
+        "age after a roll-back to an old snapshot).",
+    )
+    baseline_cause: str | None = Field(
+        None, description="How the baseline came to serve: verdict, override, rollback, manual."
+    )
     reference: str | None = Field(None, description="The reference pinned by an operator.")
     reference_lag_hours: float | None = Field(
         None, description="Without a pinned reference: the baseline as of this many hours ago."
@@ -369,6 +380,14 @@ class PromotionPublic(BaseModel):
     created_at: str
 
 
+class ComparisonPublic(BaseModel):
+    against: Literal["baseline", "reference"]
+    key: str | None = None
+    checks: list[str]
+    distribution: DistributionPublic
+    snapshot: SnapshotBrief | None = None
+
+
 class EvidencePublic(BaseModel):
     verdict_id: int
     model: str
@@ -379,7 +398,24 @@ class EvidencePublic(BaseModel):
     finding_segments: list[dict[str, Any]]
     candidate: SnapshotBrief
     baseline_snapshot: SnapshotBrief | None = None
+    reference: str | None = Field(None, description="The reference the verdict was judged with.")
+    reference_snapshot: SnapshotBrief | None = None
+    compared_with: list[Literal["baseline", "reference"]] = Field(
+        default_factory=list,
+        description="What the failed findings compared the candidate with (the baseline alone "
+        "when none compared with anything).",
+    )
+    comparisons: list[ComparisonPublic] = Field(
+        default_factory=list,
+        description="The candidate's score distribution beside each side in compared_with.",
+    )
+    lists: dict[str, Any] | None = Field(
+        None,
+        description="For list checks: items that gained and lost the most slots (share "
+        "before and after), coverage and Gini on both sides, Lorenz curves of exposure.",
+    )
     serving: str | None = None
+    serving_since: str | None = None
     candidate_serving: bool
     promotions: list[PromotionPublic]
 

@@ -9,13 +9,15 @@ Order of work:
    blocking breach naming the error (fail closed); a check that learns (an ``adaptive`` table,
    or any learning check under the policy's ``[budget]``) is then judged again against the
    limit learned from history (:mod:`service.gate.adaptive`);
-4. the stuck finding: after ``history.stuck_after_holds`` holds in a row, an advisory finding
-   (it never holds by itself: holding because earlier snapshots were held would never end);
-5. the decision: ``hold`` when a blocking finding is a breach, when a blocking finding is
+4. the decision: ``hold`` when a blocking finding is a breach, when a blocking finding is
    inconclusive and the policy says ``on_inconclusive = "hold"``, when a blocking finding is
    underpowered and the policy says ``on_underpowered = "hold"`` (by default it does not hold:
    a unit too small to decide against its margin is no evidence of harm), or when this is the
-   model's first snapshot and the policy says ``first_snapshot = "hold"``; else ``promote``.
+   model's first snapshot and the policy says ``first_snapshot = "hold"``; else ``promote``;
+5. the stuck finding: when this verdict holds and makes ``history.stuck_after_holds`` or more
+   holds in a row (itself included, as the model list counts), an advisory finding (it never
+   holds by itself: holding because earlier snapshots were held would never end).
+
 
 Reasons are ordered by severity: evaluation errors, health, lineage, other breaches (in policy
 order), then inconclusive, then underpowered findings.
@@ -33,7 +35,7 @@ from service.gate.checks.base import skipped
 from service.gate.checks.health import health_findings
 from service.gate.checks.lineage import lineage_findings
 from service.gate.checks.offpolicy import log_health_findings
-from service.gate.history import stuck_state
+from service.gate.history import consecutive_holds, stuck_state
 from service.gate.policy import Policy
 from service.gate.types import Finding, GateInput, Verdict
 
@@ -93,9 +95,12 @@ def _run_check(config: CheckConfig, inp: GateInput, policy: Policy) -> list[Find
     return [_apply_blocking(f, config) for f in produced]
 
 
-def _stuck_findings(inp: GateInput, policy: Policy) -> list[Finding]:
+def _stuck_findings(inp: GateInput, policy: Policy, *, held: bool) -> list[Finding]:
+    # Counted with this verdict (when it holds), as the model list counts the latest verdicts:
+    # the finding and the model view say the same number.
+    before = consecutive_holds(inp.history)
     state = stuck_state(
-        inp.history,
+        before + 1 if held else 0,
         threshold=policy.history.stuck_after_holds,
         baseline_since=inp.baseline_since,
         now=inp.now,
@@ -162,13 +167,14 @@ def evaluate(inp: GateInput, policy: Policy | None) -> Verdict:
     findings.extend(lineage_findings(policy.lineage, inp))
     for config in policy.checks:
         findings.extend(_run_check(config, inp, policy))
-    findings.extend(_stuck_findings(inp, policy))
     reasons = _reasons(findings, policy)
     if inp.baseline is None and policy.first_snapshot == "hold":
         reasons.append(
             "first snapshot of this model: the policy holds it until a person sets the baseline"
         )
     decision: Literal["promote", "hold"] = "hold" if reasons else "promote"
+    # advisory only, so it never changes the decision; counted after it
+    findings.extend(_stuck_findings(inp, policy, held=decision == "hold"))
     return Verdict(
         decision=decision,
         reasons=tuple(reasons),

@@ -566,6 +566,13 @@ def add_audit(
     return row
 
 
+def audit_choices(session: Session) -> tuple[list[str], list[str]]:
+    """The distinct actions and actors in the audit log (for the audit page's filters)."""
+    actions = session.scalars(select(AuditRow.action).distinct().order_by(AuditRow.action)).all()
+    actors = session.scalars(select(AuditRow.actor).distinct().order_by(AuditRow.actor)).all()
+    return list(actions), list(actors)
+
+
 def list_audit(
     session: Session,
     *,
@@ -573,15 +580,32 @@ def list_audit(
     limit: int = 100,
     before_id: int | None = None,
     exclude_actor: str | None = None,
+    actor: str | None = None,
+    action: str | None = None,
+    since: datetime | None = None,
+    until: datetime | None = None,
+    models: Sequence[str] | None = None,
 ) -> Sequence[AuditRow]:
-    """Audit entries newest first (optionally of one model, without one actor's entries)."""
+    """Audit entries newest first: optionally of one model (or of the *models* listed), by one
+    actor, of one action, at or after *since* and before *until*, without one actor's entries.
+    """
     stmt = select(AuditRow)
     if model is not None:
         stmt = stmt.where(AuditRow.model == model)
+    if models is not None:
+        stmt = stmt.where(AuditRow.model.in_(list(models)))
     if exclude_actor is not None:
         # Two ranges of ix_audit_log_model_actor rather than "!=", which no index serves:
         # the entries of a busy model are mostly the gate's own.
         stmt = stmt.where(or_(AuditRow.actor < exclude_actor, AuditRow.actor > exclude_actor))
+    if actor is not None:
+        stmt = stmt.where(AuditRow.actor == actor)
+    if action is not None:
+        stmt = stmt.where(AuditRow.action == action)
+    if since is not None:
+        stmt = stmt.where(AuditRow.at >= since)
+    if until is not None:
+        stmt = stmt.where(AuditRow.at < until)
     if before_id is not None:
         stmt = stmt.where(AuditRow.id < before_id)
     return session.scalars(stmt.order_by(AuditRow.id.desc()).limit(limit)).all()

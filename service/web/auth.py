@@ -19,7 +19,9 @@ from typing import Annotated, Any
 from urllib.parse import quote
 
 from fastapi import APIRouter, Depends, Form, Query, Request
+from fastapi.exceptions import RequestValidationError
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
+from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service.api.auth import authenticate, lookup, open_principal
 from service.api.deps import PUBLIC, Allowed, Principal
@@ -110,10 +112,41 @@ async def page_error(request: Request, exc: Exception) -> Response:
     return routes.error_page(request, exc, principal, request.app.state.clock())
 
 
+def is_page(request: Request) -> bool:
+    """Whether *request* asks for an on-call page (answered in HTML) rather than the API."""
+    path = request.url.path
+    return path == "/ui" or path.startswith("/ui/")
+
+
 def install(app: Any) -> None:
-    """Register the HTML handlers of page refusals (the API's stay JSON)."""
+    """Register the HTML handlers of page refusals, and HTML pages for any other error under
+    ``/ui/`` (an unknown page, a malformed query); the API's errors stay JSON."""
     app.add_exception_handler(SignInNeeded, page_error)
     app.add_exception_handler(PageForbidden, page_error)
+    for kind in (StarletteHTTPException, RequestValidationError):
+        app.add_exception_handler(kind, _page_or_api(app.exception_handlers[kind]))
+
+
+def _page_or_api(api_handler: Any) -> Any:
+    async def handle(request: Request, exc: Exception) -> Response:
+        if not is_page(request):
+            response: Response = await api_handler(request, exc)
+            return response
+        if isinstance(exc, StarletteHTTPException):
+            status = exc.status_code
+            message = f"no page at {request.url.path}" if status == 404 else str(exc.detail)
+        else:
+            status, message = 422, "the address has a value this page cannot read"
+            if isinstance(exc, RequestValidationError) and exc.errors():
+                first = exc.errors()[0]
+                where = ".".join(str(x) for x in first.get("loc", ()))
+                message = f"{where}: {first.get('msg', 'invalid value')}"
+        error = TidegateError(message)
+        error.status = status
+        error.code = {404: "not_found", 405: "method_not_allowed"}.get(status, "invalid_request")
+        return await page_error(request, error)
+
+    return handle
 
 
 def _sign_in_page(

@@ -7,7 +7,9 @@ and returns text; None becomes an en dash so an empty cell still reads as "nothi
 from __future__ import annotations
 
 import math
+from collections.abc import Mapping
 from datetime import UTC, datetime
+from typing import Any
 from urllib.parse import quote
 
 DASH = "–"
@@ -136,3 +138,40 @@ def state_text(state: dict[str, object] | None) -> str:
         if k in state
     ]
     return ", ".join(parts) or DASH
+
+
+def _change_kind(finding: Mapping[str, Any]) -> str | None:
+    details = finding.get("details")
+    change = details.get("change") if isinstance(details, Mapping) else None
+    return change if isinstance(change, str) else None
+
+
+#: Statistics whose value is a share of rows (shown as a percentage).
+SHARE_STATISTICS = {"non-finite", "range", "saturation", "share-differing"}
+
+
+def finding_value(finding: Mapping[str, Any]) -> str:
+    """A finding's value with its unit: ``96.6 % drop`` for a relative change, ``+0.44
+    rise`` for an absolute one, ``3.30 %`` for a share of rows, else rounded."""
+    value = finding.get("value")
+    if value is None:
+        return DASH
+    change = _change_kind(finding)
+    if change and change.startswith("relative "):
+        return f"{pct(value)} {change.removeprefix('relative ')}"
+    if change:
+        return f"{signed(value)} {change}"
+    if finding.get("statistic") in SHARE_STATISTICS:
+        return pct(value, 2)
+    return num(value)
+
+
+def finding_limit(finding: Mapping[str, Any]) -> str:
+    """A finding's limit in the same unit as :func:`finding_value`."""
+    limit = finding.get("limit")
+    if limit is None:
+        return DASH
+    change = _change_kind(finding)
+    if (change and change.startswith("relative ")) or finding.get("statistic") in SHARE_STATISTICS:
+        return pct(limit, 2 if not change else 1)
+    return num(limit)

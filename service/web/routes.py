@@ -27,7 +27,7 @@ from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from fastapi.templating import Jinja2Templates
 from sqlalchemy.orm import Session
 
-from service import explain, operate, paging, views
+from service import explain, intake, operate, paging, views
 from service.api.deps import PUBLIC, ClockDep, DbDep, PoliciesDep, Principal
 from service.api.schemas import MAX_ID
 from service.errors import Conflict, Forbidden, InvalidInput, NotFound, TidegateError
@@ -36,7 +36,7 @@ from service.gate.policy import select_policy
 from service.store import deliveries, history_values, repo
 from service.store.tables import ModelRow, SnapshotRow, VerdictRow
 from service.text import shown
-from service.web import csrf, format, svg, trends
+from service.web import csrf, evidence_view, format, svg, trends
 from service.web.auth import SESSION_COOKIE
 from service.web.deps import WebOperatorDep, WebReaderDep
 
@@ -224,9 +224,23 @@ def model_context(
         for v, s in reversed(window)
     ]
     charts = [
-        svg.trend_chart(t.points, title=t.title, bands=t.bands, limit_label=t.limit_label)
+        {
+            "wide": svg.trend_chart(
+                t.points, title=t.title, bands=t.bands, limit_label=t.limit_label
+            ),
+            "narrow": svg.trend_chart(
+                t.points,
+                title=t.title,
+                bands=t.bands,
+                limit_label=t.limit_label,
+                width=340,
+                height=230,
+                labels=3,
+            ),
+        }
         for t in trends.build_trends(row.name, trend_rows, policy)
     ]
+    reference = intake.resolve_reference(session, model=row, policy=policy, now=now)
     timeline = []
     for v, s in page:
         item = views.verdict_summary(v, s, overrides[v.id], row.name)
@@ -248,6 +262,7 @@ def model_context(
         "older": repo.encode_cursor(next_id) if next_id is not None else None,
         "paged": before is not None,
         "promotions": promotions,
+        "reference": reference.key if reference else None,
         "rollback_choices": earlier[:20],
         "audit": [
             views.audit_view(a)
@@ -288,17 +303,16 @@ def model_page(
 def verdict_context(session: Session, *, verdict: VerdictRow, model: ModelRow) -> dict[str, Any]:
     detail = views.verdict_detail(session, verdict=verdict)
     evidence = views.verdict_evidence(session, verdict=verdict, bins=DEFAULT_BINS)
-    dist = evidence["distribution"]
-    series = []
-    for side, css in (("baseline", "tg-base"), ("candidate", "tg-cand")):
-        if dist.get(side):
-            s = dist[side]
-            series.append(svg.Series(s["label"], s["shares"], css, s.get("mean")))
-    findings = sorted(detail["findings"], key=lambda f: explain.ORDER.get(f["outcome"], 9))
-    for f in findings:
-        f["gauge"] = svg.limit_gauge(f.get("value"), f.get("limit"), f["outcome"])
-        if f.get("blocking", True) and f["outcome"] in {"breach", "inconclusive", "underpowered"}:
-            f["sureness"] = explain.assess(f)
+    comparisons = []
+    for c in evidence["comparisons"]:
+        comparisons.append(
+            {
+                **c,
+                "charts": evidence_view.overlay(
+                    c["distribution"], evidence_view.SIDE_CSS.get(c["against"], "tg-base")
+                ),
+            }
+        )
     neighbours = {}
     for side in ("previous", "next"):
         vid = detail[f"{side}_verdict_id"]
@@ -310,10 +324,14 @@ def verdict_context(session: Session, *, verdict: VerdictRow, model: ModelRow) -
     return {
         "v": detail,
         "ev": evidence,
+        "state": explain.state_line(detail, evidence),
+        "judged_against": explain.judged_against(detail, evidence),
         "answers": explain.briefing(detail, evidence),
         "sections": explain.SECTIONS,
-        "findings": findings,
-        "chart": svg.histogram_overlay(dist["edges"], series),
+        "findings": evidence_view.finding_rows(detail["findings"]),
+        "comparisons": comparisons,
+        "segment_tables": evidence_view.segment_tables(detail["findings"]),
+        "lists": evidence_view.lists_context(evidence.get("lists")),
         "neighbours": neighbours,
         "proposal": proposal,
         "proposal_effect": operate.preview_override(session, verdict=verdict, decision=proposal),

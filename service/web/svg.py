@@ -1,6 +1,6 @@
 """Charts as inline SVG, drawn on the server: no JavaScript, no files to fetch, work offline.
 
-Four drawings, each a function returning :class:`markupsafe.Markup`:
+Drawings, each a function returning :class:`markupsafe.Markup`:
 
 * :func:`histogram_overlay`: two score distributions on common bins, as shares of rows
   (so samples of different sizes compare), with each side's mean marked;
@@ -8,7 +8,9 @@ Four drawings, each a function returning :class:`markupsafe.Markup`:
   (possibly moving) dashed line, and fixed bands such as a floor;
 * :func:`decision_strip`: one square per verdict, coloured by the decision in force, ringed when
   overridden, each a link;
-* :func:`limit_gauge`: a small bar of a finding's value against its limit.
+* :func:`limit_gauge`: a small bar of a finding's value against its limit;
+* :func:`interval_bar`: a confidence interval as a bar, with the estimate and the limit;
+* :func:`lorenz_chart`: Lorenz curves of list exposure (before and after).
 
 Colours come from CSS classes (``tg-cand``, ``tg-base``, ``tg-hold``, ...) set in the page's
 style sheet; every text is escaped. Coordinates are rounded to 0.1 px.
@@ -134,7 +136,18 @@ def histogram_overlay(
 ) -> Markup:
     """Bars of each series' share per bin, later series drawn over earlier ones, on one y
     scale (the largest share of any series). Bar heights are proportional to shares."""
-    box = Box(width, height, top=34)
+    # the legend: one entry per series, wrapped onto a second row when it does not fit
+    entries = [s.label + (f" (mean {num(s.mean)})" if s.mean is not None else "") for s in series]
+    rows: list[list[int]] = [[]]
+    used = 0.0
+    for i, text in enumerate(entries):
+        need = 34 + LEGEND_CHAR * len(text)
+        if rows[-1] and used + need > width:
+            rows.append([])
+            used = 0.0
+        rows[-1].append(i)
+        used += need
+    box = Box(width, height, top=14 + 20 * len(rows))
     if len(edges) < 2 or not series:
         return _svg(
             width,
@@ -186,12 +199,15 @@ def histogram_overlay(
         f'<line class="tg-axis" x1="{r(box.x0)}" x2="{r(box.x1)}" y1="{r(box.y0)}" '
         f'y2="{r(box.y0)}"/>'
     )
-    x = box.x0
-    for s in series:  # legend, top left, one row
-        text = s.label + (f" (mean {num(s.mean)})" if s.mean is not None else "")
-        body.append(f'<rect class="tg-swatch {s.css}" x="{r(x)}" y="8" width="12" height="12"/>')
-        body.append(_text(x + 17, 18, text, "tg-legend", "start"))
-        x += 34 + LEGEND_CHAR * len(text)
+    for row, members in enumerate(rows):  # legend, top left
+        x, y = 8.0, 8 + 20 * row
+        for i in members:
+            css, text = series[i].css, entries[i]
+            body.append(
+                f'<rect class="tg-swatch {css}" x="{r(x)}" y="{r(y)}" width="12" height="12"/>'
+            )
+            body.append(_text(x + 17, y + 10, text, "tg-legend", "start"))
+            x += 34 + LEGEND_CHAR * len(text)
     return _svg(
         width, height, "Score distributions: " + ", ".join(s.label for s in series), body, "tg-hist"
     )
@@ -234,22 +250,52 @@ def core_range(values: Sequence[float], fixed: Sequence[float]) -> tuple[float, 
     return lo, hi, False
 
 
+def log_scale_fits(values: Sequence[float], fixed: Sequence[float]) -> bool:
+    """Whether a trend reads better on a log scale: every value and line non-negative, some
+    positive, and the largest at least 20 times the median of the positive ones (a statistic
+    such as PSI, whose spikes are orders of magnitude above its normal level; common practice,
+    no source)."""
+    everything = list(values) + list(fixed)
+    positive = sorted(v for v in everything if v > 0)
+    if not positive or any(v < 0 for v in everything) or len(positive) < len(everything) / 2:
+        return False
+    return positive[-1] >= 20 * positive[len(positive) // 2]
+
+
+def time_labels(count: int, wanted: int = 5) -> list[int]:
+    """Indexes of up to *wanted* evenly spread points to label on a time axis (first and
+    last included)."""
+    if count <= 0:
+        return []
+    if count <= wanted:
+        return list(range(count))
+    return sorted({round(i * (count - 1) / (wanted - 1)) for i in range(wanted)})
+
+
 def trend_chart(
     points: Sequence[TrendPoint],
     *,
     title: str,
     width: float = 540,
-    height: float = 200,
+    height: float = 210,
     bands: Sequence[tuple[str, float]] = (),
     limit_label: str = "limit",
+    scale: str = "auto",
+    labels: int = 5,
+    value_label: str = "value",
 ) -> Markup:
     """The values as a line with a dot per verdict (filled brick when the check breached,
-    ringed when the verdict was held for any reason), the per-verdict limit as a dashed step
+    ringed when the verdict was held for any reason), the per-verdict limit as one dashed step
     line, and each band (label, value) as a dotted horizontal line. Gaps where a value is
-    missing break the line. Points are evenly spaced in time order. A value far outside the
-    rest is drawn as a triangle on the edge, its value in its tooltip (see :func:`core_range`).
+    missing break the line. Points are evenly spaced in time order, *labels* of them named on
+    the time axis.
+
+    Spikes never flatten the rest: with ``scale="auto"`` a statistic whose spikes are orders
+    of magnitude above its usual level (:func:`log_scale_fits`) is drawn on a log scale, and
+    otherwise a value far outside the rest is drawn as a triangle on the edge with its value in
+    its tooltip (:func:`core_range`); either is stated on the chart.
     """
-    box = Box(width, height, left=56, top=28, bottom=24)
+    box = Box(width, height, left=52, top=40, bottom=24)
     values = [p.value for p in points if p.value is not None]
     limits = [p.limit for p in points if p.limit is not None]
     if not values:
@@ -263,56 +309,91 @@ def trend_chart(
             ],
             "tg-trend",
         )
-    lo, hi, clipped = core_range(values, limits + [b[1] for b in bands])
-    pad = (hi - lo) * 0.08 or max(abs(hi) * 0.05, 1e-6)
-    lo, hi = lo - pad, hi + pad
+    fixed = limits + [b[1] for b in bands]
+    use_log = scale == "log" or (scale == "auto" and log_scale_fits(values, fixed))
+    if use_log:
+        positive = [v for v in values + fixed if v > 0]
+        floor = min(positive) / 2
+        lo, hi = math.log10(floor), math.log10(max(positive))
+        pad = (hi - lo) * 0.06 or 0.1
+        lo, hi = lo - pad, hi + pad
+        clipped = False
+
+        def tr(value: float) -> float:
+            return math.log10(max(value, floor))
+
+    else:
+        lo, hi, clipped = core_range(values, fixed)
+        pad = (hi - lo) * 0.08 or max(abs(hi) * 0.05, 1e-6)
+        lo, hi = lo - pad, hi + pad
+
+        def tr(value: float) -> float:
+            return value
+
     n = len(points)
     xs = Scale(0, max(n - 1, 1), box.x0 + 4, box.x1 - 4)
     ys = Scale(lo, hi, box.y0, box.y1)
 
     def y_of(value: float) -> float:
-        return ys(min(max(value, lo), hi))
+        return ys(min(max(tr(value), lo), hi))
 
-    body = [_text(box.x0, 16, title, "tg-legend", "start")]
-    legend_x = box.x1
-    keys: list[tuple[str, str]] = []
+    body = [_text(box.x0 - 44, 16, title, "tg-legend", "start")]
+    keys: list[tuple[str, str]] = [("tg-line", value_label)]
     if limits:
         last = next(p.limit for p in reversed(points) if p.limit is not None)
-        keys.append(("tg-limit", f"{limit_label} {num(last)}"))
+        keys.append(("tg-limit", f"{limit_label} (latest {num(last)})"))
     keys.extend(("tg-band", f"{name} {num(value)}") for name, value in bands)
-    if clipped:
-        keys.append(("", "▲▼ off scale"))
-    for css, text in reversed(keys):  # right-aligned key: a line sample, then its text
-        legend_x -= 6.2 * len(text)
-        body.append(_text(legend_x, 16, text, "tg-label", "start"))
+    off = [p for p in points if p.value is not None and not use_log and not lo <= p.value <= hi]
+    if use_log:
+        keys.append(("", "log scale"))
+    elif clipped and off:
+        top = max(p.value for p in off if p.value is not None)
+        keys.append(("", f"▲ {len(off)} off scale (up to {num(top)})"))
+    key_x = box.x0 - 44
+    for css, text in keys:  # the key, one row under the title: a line sample, then its text
         if css:
             body.append(
-                f'<line class="{css}" x1="{r(legend_x - 24)}" x2="{r(legend_x - 4)}" '
-                f'y1="12" y2="12"/>'
+                f'<line class="{css}" x1="{r(key_x)}" x2="{r(key_x + 18)}" y1="29" y2="29"/>'
             )
-        legend_x -= 36
-    for t in nice_ticks(lo, hi, 5):
+            key_x += 22
+        body.append(_text(key_x, 33, text, "tg-label", "start"))
+        key_x += 6.2 * len(text) + 14
+    if use_log:
+        decades = range(math.floor(lo), math.ceil(hi) + 1)
+        ticks = [float(d) for d in decades if lo <= d <= hi]
+        if len(ticks) < 2:
+            ticks = [lo + (hi - lo) * i / 3 for i in range(4)]
+        tick_labels = [num(10**t, 2) for t in ticks]
+    else:
+        ticks = nice_ticks(lo, hi, 4)
+        tick_labels = [num(t, 3) for t in ticks]
+    for t, label in zip(ticks, tick_labels, strict=True):
         body.append(
             f'<line class="tg-grid" x1="{r(box.x0)}" x2="{r(box.x1)}" y1="{r(ys(t))}" '
             f'y2="{r(ys(t))}"/>'
         )
-        body.append(_text(box.x0 - 6, ys(t) + 4, num(t, 3), anchor="end"))
+        body.append(_text(box.x0 - 6, ys(t) + 4, label, anchor="end"))
     for _name, value in bands:
-        if lo <= value <= hi:
+        if lo <= tr(value) <= hi:
             body.append(
                 f'<line class="tg-band" x1="{r(box.x0)}" x2="{r(box.x1)}" '
-                f'y1="{r(ys(value))}" y2="{r(ys(value))}"/>'
+                f'y1="{r(y_of(value))}" y2="{r(y_of(value))}"/>'
             )
-    # the limit as a step line: each verdict's limit holds until the next one's
-    segments: list[str] = []
+    # the limit as one step line (one path, so its dashes run on): each verdict's limit holds
+    # until the next one's; a verdict without a limit lifts the pen
+    steps: list[str] = []
+    pen = False
     for i, p in enumerate(points):
         if p.limit is None:
+            pen = False
             continue
         x_from = xs(i - 0.5) if i > 0 else xs(0)
         x_to = xs(i + 0.5) if i < n - 1 else xs(n - 1)
-        segments.append(f"M{r(x_from)} {r(y_of(p.limit))}H{r(x_to)}")
-    if segments:
-        body.append(f'<path class="tg-limit" d="{"".join(segments)}"/>')
+        y = y_of(p.limit)
+        steps.append(f"{'V' if pen else 'M' + r(x_from) + ' '}{r(y)}H{r(x_to)}")
+        pen = True
+    if steps:
+        body.append(f'<path class="tg-limit" d="{"".join(steps)}"/>')
     path: list[str] = []
     pen_down = False
     for i, p in enumerate(points):
@@ -332,7 +413,7 @@ def trend_chart(
             + (f"; {p.note}" if p.note else "")
         )
         x, y = xs(i), y_of(p.value)
-        if p.value > hi or p.value < lo:  # off the scale: a triangle on the edge
+        if not use_log and (p.value > hi or p.value < lo):  # off the scale: a triangle
             tip += " (off the scale)"
             tip_y = 6.0 if p.value > hi else -6.0
             dot = (
@@ -348,10 +429,114 @@ def trend_chart(
         if p.href:
             dot = f'<a href="{escape(p.href)}">{dot}</a>'
         body.append(dot)
-    body.append(_text(xs(0), height - 6, points[0].label, "tg-label tg-muted", "start"))
-    if n > 1:
-        body.append(_text(xs(n - 1), height - 6, points[-1].label, "tg-label tg-muted", "end"))
+    shown = time_labels(n, labels)
+    for i in shown:
+        anchor = "start" if i == 0 and n > 1 else ("end" if i == n - 1 and n > 1 else "middle")
+        body.append(
+            f'<line class="tg-axis" x1="{r(xs(i))}" x2="{r(xs(i))}" y1="{r(box.y0)}" '
+            f'y2="{r(box.y0 + 3)}"/>'
+        )
+        body.append(_text(xs(i), height - 6, points[i].label, "tg-label tg-muted", anchor))
     return _svg(width, height, title, body, "tg-trend")
+
+
+# --- intervals and list exposure ------------------------------------------------------------
+
+
+def interval_bar(
+    low: float,
+    high: float,
+    estimate: float | None,
+    limit: float | None,
+    *,
+    width: float = 150,
+    height: float = 20,
+) -> Markup:
+    """A confidence interval as a bar on a line through zero, the estimate as a dot and the
+    limit as a brick tick; the scale spans the interval, zero and the limit."""
+    ends = [low, high, 0.0] + ([limit] if limit is not None else [])
+    lo, hi = min(ends), max(ends)
+    pad = (hi - lo) * 0.08 or 1e-3
+    xs = Scale(lo - pad, hi + pad, 2, width - 2)
+    mid = height / 2
+    body = [
+        f'<line class="tg-axis" x1="2" x2="{r(width - 2)}" y1="{r(mid)}" y2="{r(mid)}"/>',
+        f'<line class="tg-zero" x1="{r(xs(0))}" x2="{r(xs(0))}" y1="3" y2="{r(height - 3)}"/>',
+        f'<rect class="tg-int" x="{r(xs(low))}" y="{r(mid - 4)}" '
+        f'width="{r(max(xs(high) - xs(low), 1.5))}" height="8" rx="2"/>',
+    ]
+    if limit is not None:
+        body.append(
+            f'<line class="tg-limit-tick" x1="{r(xs(limit))}" x2="{r(xs(limit))}" y1="0" '
+            f'y2="{r(height)}"/>'
+        )
+    if estimate is not None:
+        body.append(f'<circle class="tg-est" cx="{r(xs(estimate))}" cy="{r(mid)}" r="3"/>')
+    title = f"interval {num(low)} to {num(high)}" + (
+        f", limit {num(limit)}" if limit is not None else ""
+    )
+    return _svg(width, height, title, body, "tg-interval")
+
+
+@dataclass(frozen=True)
+class Curve:
+    """One Lorenz curve: ``[x, y]`` points from (0, 0) to (1, 1), its label and CSS class."""
+
+    label: str
+    points: Sequence[Sequence[float]]
+    css: str
+
+
+def lorenz_chart(curves: Sequence[Curve], *, width: float = 360, height: float = 380) -> Markup:
+    """Lorenz curves of exposure: x the share of catalog items (least shown first), y the
+    share of list slots they hold; the diagonal is equal exposure, and the further a curve sags
+    below it the more the slots go to a few items."""
+    box = Box(width, height, left=46, right=14, top=14, bottom=86)
+    side = min(box.x1 - box.x0, box.y0 - box.y1)
+    xs = Scale(0.0, 1.0, box.x0, box.x0 + side)
+    ys = Scale(0.0, 1.0, box.y1 + side, box.y1)
+    body: list[str] = []
+    for t in (0.0, 0.25, 0.5, 0.75, 1.0):
+        body.append(
+            f'<line class="tg-grid" x1="{r(xs(0))}" x2="{r(xs(1))}" y1="{r(ys(t))}" '
+            f'y2="{r(ys(t))}"/>'
+        )
+        body.append(_text(xs(0) - 5, ys(t) + 4, pct(t, 0), anchor="end"))
+        body.append(_text(xs(t), ys(0) + 15, pct(t, 0)))
+    body.append(
+        f'<line class="tg-band" x1="{r(xs(0))}" y1="{r(ys(0))}" x2="{r(xs(1))}" y2="{r(ys(1))}"/>'
+    )
+    body.append(_text(xs(0.5), ys(0) + 30, "share of catalog items, least shown first"))
+    for curve in curves:
+        if not curve.points:
+            continue
+        d = "".join(
+            f"{'L' if i else 'M'}{r(xs(x))} {r(ys(y))}" for i, (x, y) in enumerate(curve.points)
+        )
+        body.append(
+            f'<path class="tg-curve {curve.css}" d="{d}"><title>{escape(curve.label)}'
+            "</title></path>"
+        )
+    y = ys(0) + 50
+    for curve in curves:
+        body.append(
+            f'<line class="tg-curve {curve.css}" x1="{r(xs(0))}" x2="{r(xs(0) + 20)}" '
+            f'y1="{r(y - 4)}" y2="{r(y - 4)}"/>'
+        )
+        body.append(_text(xs(0) + 26, y, curve.label, "tg-label", "start"))
+        y += 16
+    body.append(
+        f'<line class="tg-band" x1="{r(xs(0))}" x2="{r(xs(0) + 20)}" y1="{r(y - 4)}" '
+        f'y2="{r(y - 4)}"/>'
+    )
+    body.append(_text(xs(0) + 26, y, "equal exposure", "tg-label", "start"))
+    return _svg(
+        width,
+        height,
+        "Lorenz curves of exposure: " + ", ".join(c.label for c in curves),
+        body,
+        "tg-lorenz",
+    )
 
 
 # --- decisions ------------------------------------------------------------------------------

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 from datetime import UTC, datetime, timedelta
 
 import numpy as np
@@ -165,13 +166,21 @@ def test_stuck_after_repeated_holds_is_advisory_on_every_verdict() -> None:
         baseline_since=NOW - timedelta(hours=6),
     )
     verdict = evaluate(inp, _policy())
-    stuck = _finding(verdict, "history.stuck")
-    assert stuck.outcome == "advisory" and not stuck.blocking
-    assert stuck.message == "stuck: 4 holds in a row; serving a baseline from 6 h ago"
+    # a promote ends the run of holds: not stuck any more, and the finding is not repeated
     assert verdict.decision == "promote"  # advisory only
-    quiet = evaluate(inp, _policy(history="[history]\nstuck_after_holds = 5\n"))
+    assert not [f for f in verdict.findings if f.check == "history.stuck"]
+    few = Snapshot(model="shelf-ranker", key="c", sample=Sample({"score": np.full(5, 0.5)}))
+    held_inp = dataclasses.replace(inp, candidate=few)  # 5 rows, fewer than min_rows: held
+    held = evaluate(held_inp, _policy())
+    assert held.decision == "hold"
+    stuck = _finding(held, "history.stuck")
+    assert stuck.outcome == "advisory" and not stuck.blocking
+    # counted with this verdict, as the model list counts: 4 before it and itself
+    assert stuck.message == "stuck: 5 holds in a row; serving a baseline from 6 h ago"
+    assert stuck.value == 5
+    quiet = evaluate(held_inp, _policy(history="[history]\nstuck_after_holds = 6\n"))
     assert not [f for f in quiet.findings if f.check == "history.stuck"]
-    off = evaluate(inp, _policy(history="[history]\nstuck_after_holds = 0\n"))
+    off = evaluate(held_inp, _policy(history="[history]\nstuck_after_holds = 0\n"))
     assert not [f for f in off.findings if f.check == "history.stuck"]
 
 

@@ -114,10 +114,10 @@ def test_held_verdict_override_shows_on_timeline(service: LiveService, browser: 
     assert "clear" in answers and "mean score" in answers
 
     # 3. the chart is there, drawn by the browser with visible bars of both sides
-    chart = browser.find_element(By.CSS_SELECTOR, "svg.tg-hist")
+    chart = browser.find_element(By.CSS_SELECTOR, ".only-wide svg.tg-hist")
     assert chart.size["width"] > 600
     for side in ("tg-cand", "tg-base"):
-        bars = browser.find_elements(By.CSS_SELECTOR, f"svg.tg-hist g.{side} rect")
+        bars = browser.find_elements(By.CSS_SELECTOR, f".only-wide svg.tg-hist g.{side} rect")
         assert len(bars) == 30
         assert max(b.size["height"] for b in bars) > 50
     screenshot(browser, "verdict-held")
@@ -150,7 +150,7 @@ def test_held_verdict_override_shows_on_timeline(service: LiveService, browser: 
     )
     assert "overridden to promote" in row.text and "ticket 4711" in row.text
     assert len(browser.find_elements(By.CSS_SELECTOR, "svg.tg-strip rect.tg-overridden")) == 1
-    assert len(browser.find_elements(By.CSS_SELECTOR, "svg.tg-trend")) == 3
+    assert len(browser.find_elements(By.CSS_SELECTOR, ".only-wide svg.tg-trend")) == 3
     history = browser.find_element(By.ID, "baseline").find_element(By.XPATH, "following::table")
     assert "operator override" in history.text
     screenshot(browser, "model")

@@ -65,7 +65,8 @@ def test_verdict_page_answers_why_how_sure_what_changed_what_next(h: Harness) ->
 
 def test_verdict_page_draws_both_distributions(h: Harness) -> None:
     html = h.http.get("/ui/models/shelf-ranker/snapshots/s04").text
-    (chart,) = svgs(html, "tg-hist")
+    chart, narrow = svgs(html, "tg-hist")  # drawn twice: for wide screens and for phones
+    assert narrow.get("width") == "340"
     ns = "{http://www.w3.org/2000/svg}"
     groups = {g.get("class"): g for g in chart.iter(ns + "g")}
     cand = [float(r.get("data-share")) for r in groups["tg-bars tg-cand"].iter(ns + "rect")]
@@ -120,8 +121,10 @@ def test_unknown_things_are_404_pages(h: Harness, url: str) -> None:
 def test_model_page_trends_timeline_and_baseline_history(h: Harness) -> None:
     html = h.http.get("/ui/models/shelf-ranker").text
     titles = [c.find("{http://www.w3.org/2000/svg}title").text for c in svgs(html, "tg-trend")]
-    assert titles == ["score-psi: PSI", "reported auc", "mean score of the sample"]
-    (auc,) = [
+    # each trend is drawn twice: for wide screens and, narrower, for phones
+    expected = ["score-psi: PSI", "reported auc", "mean score of the sample"]
+    assert titles[0::2] == titles[1::2] == expected
+    auc, _narrow = [
         c
         for c in svgs(html, "tg-trend")
         if "auc" in c.find("{http://www.w3.org/2000/svg}title").text
@@ -313,6 +316,6 @@ def test_pages_render_without_sample_baseline_or_policy(h: Harness) -> None:
     )
     assert posted.status_code == 201
     page = h.http.get("/ui/models/shelf-ranker/snapshots/s05")
-    assert page.status_code == 200 and len(svgs(page.text, "tg-hist")) == 1
+    assert page.status_code == 200 and len(svgs(page.text, "tg-hist")) == 2  # wide, narrow
     assert h.http.get("/ui/models/shelf-ranker").status_code == 200
     assert h.http.get("/v1/verdicts/8/evidence").json()["distribution"]["candidate"] is None

@@ -132,16 +132,78 @@ def test_trend_breaks_line_at_missing_values() -> None:
 
 
 def test_trend_puts_a_far_outlier_off_the_scale() -> None:
-    values = [0.01, 0.012, 0.011, 0.009, 0.01, 0.013, 0.012, 0.01, 0.011, 0.01, 7.8]
-    points = [svg.TrendPoint(str(i), v, 0.1) for i, v in enumerate(values)]
-    root = parse(svg.trend_chart(points, title="psi"))
+    # a reported AUC near 0.78 and one collapsed push at 0.2 (issue 14: spikes must not hide
+    # the limit and slow changes); common practice, no source
+    values = [0.78, 0.781, 0.779, 0.78, 0.782, 0.78, 0.779, 0.781, 0.78, 0.78, 0.2]
+    points = [svg.TrendPoint(str(i), v, 0.77) for i, v in enumerate(values)]
+    drawing = svg.trend_chart(points, title="auc")
+    root = parse(drawing)
     off = [
         p for p in root.iter("{http://www.w3.org/2000/svg}path") if "tg-off" in p.get("class", "")
     ]
     assert len(off) == 1
     assert "off the scale" in off[0].find("s:title", NS).text
-    lo, hi, clipped = svg.core_range(values, [0.1])
-    assert clipped and hi < 1.0 and lo <= 0.009
+    assert "1 off scale (up to 0.2)" in str(drawing)  # said on the chart, not only in tooltips
+    lo, hi, clipped = svg.core_range(values, [0.77])
+    assert clipped and lo > 0.5 and hi >= 0.782
+
+
+def _ys(root: ET.Element, css: str) -> list[float]:
+    """The y coordinates of the dots (circles) of a trend."""
+    return [
+        float(c.get("cy"))
+        for c in root.iter("{http://www.w3.org/2000/svg}circle")
+        if css in c.get("class", "")
+    ]
+
+
+def test_trend_of_a_spiky_statistic_is_drawn_on_a_log_scale() -> None:
+    # PSI near 0.01 with one blow-up at 7.8 and a limit of 0.1 (the demo's shape): on a log
+    # scale the limit sits well clear of the bulk, so both stay readable
+    values = [0.01, 0.012, 0.011, 0.009, 0.01, 0.013, 0.012, 0.01, 0.011, 0.01, 7.8]
+    points = [svg.TrendPoint(str(i), v, 0.1) for i, v in enumerate(values)]
+    drawing = svg.trend_chart(points, title="psi", height=210)
+    assert "log scale" in str(drawing)
+    root = parse(drawing)
+    ys = _ys(root, "tg-dot")
+    limit = next(
+        p for p in root.iter("{http://www.w3.org/2000/svg}path") if p.get("class") == "tg-limit"
+    )
+    limit_y = float(limit.get("d").split()[1].split("H")[0])
+    bulk = ys[:-1]
+    # one decade (0.01 -> 0.1) spans a visible part of the plot: well over 20 px here
+    assert min(bulk) - limit_y > 20
+    assert ys[-1] < limit_y  # the spike is above the limit, drawn, not clipped
+    # the limit is one path: its dashes run on (a dashed legend matches a dashed line)
+    assert limit.get("d").count("M") == 1
+    assert not svg.log_scale_fits([0.78, 0.2], [0.77])
+
+
+def test_trend_labels_enough_times() -> None:
+    points = [svg.TrendPoint(f"t{i}", float(i)) for i in range(96)]
+    root = parse(svg.trend_chart(points, title="x"))
+    labels = [
+        t.text
+        for t in root.iter("{http://www.w3.org/2000/svg}text")
+        if t.text and t.text.startswith("t")
+    ]
+    assert labels == ["t0", "t24", "t48", "t71", "t95"]
+    assert svg.time_labels(3) == [0, 1, 2]
+
+
+def test_lorenz_curve_and_interval_bar() -> None:
+    curves = [svg.Curve("before", [[0, 0], [0.5, 0.25], [1, 1]], "tg-base")]
+    root = parse(svg.lorenz_chart(curves, width=360, height=380))
+    paths = [
+        p for p in root.iter("{http://www.w3.org/2000/svg}path") if "tg-curve" in p.get("class", "")
+    ]
+    assert len(paths) == 1 and paths[0].get("d").count("L") == 2
+    bar = parse(svg.interval_bar(-0.02, -0.005, -0.01, -0.01))
+    rect = next(
+        r for r in bar.iter("{http://www.w3.org/2000/svg}rect") if r.get("class") == "tg-int"
+    )
+    assert float(rect.get("width")) > 10  # the interval is drawn as a bar
+    assert any(e.get("class") == "tg-limit-tick" for e in bar.iter())
 
 
 def test_core_range_keeps_everything_without_outliers() -> None:

@@ -317,7 +317,7 @@ def _message(
             return (
                 f"{head} exceeds {config.max:g} but is not significant at {config.alpha:g}{ptext}"
             )
-        return f"{head} within {_limit_text(config)}{ptext}"
+        return f"{head} within {_within_text(config)}{ptext}"
     if over_units:
         worst = ", ".join(
             f"{r['segment'] if r['segment'] != ALL else 'all rows'} {r['value']:.3g}"
@@ -325,7 +325,15 @@ def _message(
             if r["outcome"] == "breach"
         )
         return f"{head}{ptext}; exceeds {_limit_text(config)} in {worst}"
-    return f"{head}{ptext}; within {_limit_text(config)} on all rows and in every segment"
+    return f"{head}{ptext}; within {_within_text(config)} on all rows and in every segment"
+
+
+def _within_text(config: DriftConfig) -> str:
+    """What an ``ok`` finding stayed within: the limit alone (an ok finding is no claim of
+    significance), or, without a limit, below significance."""
+    if config.max is not None:
+        return f"the limit {config.max:g}"
+    return f"chance (not significant at {config.alpha:g})"
 
 
 def _limit_text(config: DriftConfig) -> str:

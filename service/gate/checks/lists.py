@@ -283,6 +283,8 @@ def run_lists(config: ListsConfig, ctx: CheckContext) -> list[Finding]:
     )
     over = value > limit
     limit_text = f"{limit:.1%}" if relative else f"{limit:g}"
+    # what value and limit measure, for pages: "relative drop" (a share) or "rise" (absolute)
+    details["change"] = f"relative {word}" if relative else word
     return [
         finding(
             "breach" if over else "ok",
