@@ -390,14 +390,19 @@ def with_exploration(events: list[DemoEvent]) -> list[DemoEvent]:
     for step, index in enumerate(shelf):
         event = events[index]
         bad = index == target
-        columns = _exploration_slots(
-            np.random.default_rng([SEED + 3, step]), len(event.body["sample"]["score"]), bad
-        )
-        body = dict(event.body)
-        body["sample"] = {**event.body["sample"], **columns}
-        out.append(
-            (index, DemoEvent(event.model, event.at, body, "off-policy" if bad else event.note))
-        )
+
+        # Made when first read, like the event it wraps (whose body depends on what serves
+        # by then), and the verdict is passed on to it.
+        def make(event: DemoEvent = event, step: int = step, bad: bool = bad) -> dict[str, Any]:
+            columns = _exploration_slots(
+                np.random.default_rng([SEED + 3, step]), len(event.body["sample"]["score"]), bad
+            )
+            body = dict(event.body)
+            body["sample"] = {**event.body["sample"], **columns}
+            return body
+
+        note = "off-policy" if bad else event.note
+        out.append((index, DemoEvent(event.model, event.at, make, note, on_verdict=event.settle)))
     result = list(events)
     for index, event in out:
         result[index] = event

@@ -46,7 +46,9 @@ def test_demo_holds_the_bad_pushes(make_harness) -> None:  # type: ignore[no-unt
     # held by the off-policy estimate on the logged exploration slots.
     unseen = next(v for note, v in decisions.values() if note == "off-policy")
     outcomes = {f["check"]: f["outcome"] for f in unseen["findings"]}
-    assert outcomes["auc-vs-baseline"] == "ok" and outcomes["shelf-clicks-offpolicy"] == "breach"
+    # on the holdout labels the push is not worse (ok, or too few clicks to decide: underpowered)
+    assert outcomes["auc-vs-baseline"] in {"ok", "underpowered"}
+    assert outcomes["shelf-clicks-offpolicy"] == "breach"
     assert [f for f in unseen["findings"] if f["outcome"] == "breach"] == [
         f for f in unseen["findings"] if f["check"] == "shelf-clicks-offpolicy"
     ]

@@ -15,6 +15,7 @@ from sqlalchemy.orm import Session
 
 from service import intake, operate
 from service.gate.adaptive import learn_limit
+from service.gate.history import history_values as gate_history_values
 from service.gate.policy import parse_policy
 from service.gate.types import Finding, HistoryEntry, Sample, Verdict
 from service.settings import Settings
@@ -110,11 +111,8 @@ def decoded_history(session: Session, model_id: int, limit: int) -> tuple[Histor
                 healthy=effective == "promote" and snap.id in ever and snap.id not in rolled,
                 rows_trained=snap.rows_trained,
                 trained_until=repo.utc(snap.trained_until),
-                values={
-                    f["check"]: float(f["value"])
-                    for f in verdict.findings
-                    if f.get("value") is not None
-                },
+                # the gate's own rule for the values of a stored verdict
+                values=gate_history_values(verdict.findings),
             )
         )
     return tuple(out)
