@@ -44,6 +44,7 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from service import views
 from service.gate.policy import Policy, select_policy
+from service.metrics import escape_label, format_value
 from service.settings import Settings
 from service.store import db as store_db
 from service.store import deliveries, repo
@@ -445,8 +446,6 @@ def model_gauges(
 ) -> str:
     """Per-model gauges and stored-verdict counters in the Prometheus text format (0.0.4),
     read from the database now."""
-    from service.metrics import escape_label, format_value
-
     rows = [m for m in repo.list_model_rows(session) if allow(m.name)]
     counts = repo.verdict_counts_by_model(session) if rows else {}
     series: dict[str, list[str]] = {name: [] for name, _, _ in GAUGES}

@@ -5,9 +5,9 @@ environment variables (or a ``.env`` file), and documented in the README (a test
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Literal
+from typing import Any, Literal
 
-from pydantic import Field, SecretStr, model_validator
+from pydantic import Field, SecretStr
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
 
@@ -136,8 +136,8 @@ class Settings(BaseSettings):
         "(with jitter), capped at one hour.",
     )
 
-    @model_validator(mode="after")
-    def _webhook_complete(self) -> Settings:
+    def model_post_init(self, context: Any, /) -> None:
+        """Cross-field rules (run once the fields are read): the webhook settings are whole."""
         events = {e.strip() for e in self.webhook_events.split(",") if e.strip()}
         unknown = events - {"hold", "stuck", "override"}
         if unknown:
@@ -148,7 +148,6 @@ class Settings(BaseSettings):
             secret = self.webhook_secret.get_secret_value() if self.webhook_secret else ""
             if len(secret) < 16:
                 raise ValueError("webhook_url needs webhook_secret of at least 16 characters")
-        return self
 
     def webhook_event_set(self) -> frozenset[str]:
         """The events to send (empty without a webhook URL)."""

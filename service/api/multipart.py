@@ -1,8 +1,8 @@
 """``multipart/form-data`` (RFC 7578) split into parts that are views of the body, not copies.
 
 The body is already in memory (decoded, within the size limit), so the parts are found with
-``bytes.find`` and handed on as :class:`memoryview` slices: a 100 MB Arrow part is read by
-pyarrow where it lies. (python-multipart, which FastAPI uses for forms, streams each part into
+``bytes.find`` and handed on as :class:`memoryview` slices: an Arrow part of 100 MB is read
+by pyarrow where it lies. (python-multipart, which FastAPI uses for forms, streams each part into
 a spooled temporary file: two more copies of the largest thing in the request.)
 """
 
